@@ -1,0 +1,333 @@
+"""The worker's run engine: a Gerbicz-checked Fermat PRP run with crash-safe state, residue capture
+on disk, and certificate output.
+
+Files beside the certificate ``OUT`` while a run is in progress:
+
+* ``OUT.spool``: captured residues u_1..u_(2^depth), fixed-size records (residue || SHA-256).
+* ``OUT.state`` and ``OUT.state.prev``: the two newest checkpoints (spec/format.md, "Run state").
+
+Only states covered by a passed Gerbicz check are written. A checkpoint records how many spool
+records a passed check covers; records beyond that are void and truncated on resume or rollback.
+Memory: the chain holds a few residues; building the proof holds at most ``depth`` more.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import time
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any, BinaryIO
+
+import msgpack
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+from gmpy2 import mpz
+
+from .codec import MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate, encode
+from .errors import RunFailed, UsageError
+from .gerbicz import (
+    DEFAULT_MAX_CONSECUTIVE_FAILURES,
+    CaptureGrid,
+    ChainState,
+    ChainStats,
+    Fault,
+    GerbiczChain,
+    default_block,
+)
+from .numbers import Mersenne, fermat_verdict, validate_base
+from .proof import Statement, prove
+from .signing import raw_public, sign
+
+STATE_MAGIC = b"CHAINSTA"
+STATE_VERSION = 1
+DIGEST = 32
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that a crash leaves either the old or the new file."""
+    tmp = path.with_name(path.name + ".tmp")
+    with open(tmp, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+
+
+def _fsync_dir(folder: Path) -> None:
+    fd = os.open(folder, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    """What to run: a Fermat PRP test of ``number`` to ``base`` with a proof of ``depth``."""
+
+    number: Mersenne
+    base: int = 3
+    depth: int = 8
+    block: int = 0  # Gerbicz block length L; 0 picks default_block
+    blocks_per_check: int = 0  # B; 0 picks default_block
+    challenge_bits: int = 64
+
+    def __post_init__(self) -> None:
+        validate_base(self.number, self.base)
+        if not 1 <= self.depth <= MAX_DEPTH or (1 << self.depth) > self.squarings:
+            raise UsageError(f"depth {self.depth} impossible: need 1 <= depth <= "
+                             f"{min(MAX_DEPTH, self.squarings.bit_length() - 1)}")
+        if self.challenge_bits % 8 or not 64 <= self.challenge_bits <= 256:
+            raise UsageError("challenge bits must be a multiple of 8 in [64, 256]")
+        L, B = default_block(self.squarings)
+        object.__setattr__(self, "block", self.block or L)
+        object.__setattr__(self, "blocks_per_check", self.blocks_per_check or B)
+        if self.block < 1 or self.blocks_per_check < 1:
+            raise UsageError("Gerbicz block sizes must be positive")
+
+    @property
+    def squarings(self) -> int:
+        return self.number.p
+
+    def grid(self, extra: Iterable[int] = ()) -> CaptureGrid:
+        T, d = self.squarings, self.depth
+        return CaptureGrid(T % (1 << d), T >> d, 1 << d, extra)
+
+    def identity(self) -> dict[str, Any]:
+        return {
+            "number": self.number.text,
+            "base": self.base,
+            "depth": self.depth,
+            "block": self.block,
+            "blocks_per_check": self.blocks_per_check,
+            "challenge_bits": self.challenge_bits,
+        }
+
+
+@dataclass
+class RunReport:
+    certificate: Path
+    certificate_bytes: int
+    seconds: float
+    squarings: int  # squarings done in this invocation, check work included
+    depth: int
+    gerbicz_checks: int
+    errors_recovered: int
+    resumed_at: int | None  # step a resumed run started from, or None for a fresh run
+    result: str
+    residue64: str
+    warnings: list[str] = field(default_factory=list)
+
+
+class Spool:
+    """Fixed-size records (residue || SHA-256(residue)) for u_1..u_n, record j at (j-1)*size."""
+
+    def __init__(self, path: Path, number: Mersenne, fresh: bool) -> None:
+        self.path, self.number = path, number
+        self.size = number.nbytes + DIGEST
+        self.fh: BinaryIO = open(path, "w+b" if fresh else "r+b")  # noqa: SIM115 closed in close()
+
+    def write(self, j: int, x: mpz) -> None:
+        data = self.number.to_bytes(x)
+        self.fh.seek((j - 1) * self.size)
+        self.fh.write(data + hashlib.sha256(data).digest())
+
+    def read_record(self, j: int) -> tuple[bytes, bytes]:
+        self.fh.seek((j - 1) * self.size)
+        rec = self.fh.read(self.size)
+        data, digest = rec[: -DIGEST], rec[-DIGEST:]
+        if len(rec) != self.size or hashlib.sha256(data).digest() != digest:
+            raise RunFailed(f"spool record {j} in {self.path} is damaged; restart the run")
+        return data, digest
+
+    def read(self, j: int) -> mpz:
+        return self.number.from_bytes(self.read_record(j)[0])
+
+    def keep(self, count: int) -> None:
+        """Drop every record after the first ``count``."""
+        self.fh.flush()
+        self.fh.truncate(count * self.size)
+
+    def sync(self) -> None:
+        self.fh.flush()
+        os.fsync(self.fh.fileno())
+
+    def close(self) -> None:
+        self.fh.close()
+
+
+class Run:
+    """One Fermat PRP run of ``config`` writing its certificate to ``out``.
+
+    ``clock`` and ``fault`` are injectable for tests; ``progress(step, total)`` is called at block
+    ends; ``warn(message)`` receives recoverable problems (such as a damaged newest checkpoint).
+    """
+
+    def __init__(
+        self,
+        config: RunConfig,
+        out: Path,
+        *,
+        key: Ed25519PrivateKey | None = None,
+        checkpoint_seconds: float = 60.0,
+        clock: Callable[[], float] = time.monotonic,
+        fault: Fault | None = None,
+        fault_steps: Iterable[int] = (),
+        progress: Callable[[int, int], None] | None = None,
+        warn: Callable[[str], None] | None = None,
+        max_failures: int = DEFAULT_MAX_CONSECUTIVE_FAILURES,
+    ) -> None:
+        self.config, self.out, self.key = config, out, key
+        self.checkpoint_seconds, self.clock = checkpoint_seconds, clock
+        self.fault, self.fault_steps = fault, tuple(fault_steps)
+        self.progress, self.max_failures = progress, max_failures
+        self.warnings: list[str] = []
+        self._warn_cb = warn
+        self.spool_path = out.with_name(out.name + ".spool")
+        self.state_path = out.with_name(out.name + ".state")
+        self.prev_path = out.with_name(out.name + ".state.prev")
+
+    def _warn(self, message: str) -> None:
+        self.warnings.append(message)
+        if self._warn_cb is not None:
+            self._warn_cb(message)
+
+    # -- checkpoints -----------------------------------------------------------------------
+    def _encode_state(self, state: ChainState, committed: int) -> bytes:
+        num = self.config.number
+        body = msgpack.packb(
+            {
+                **self.config.identity(),
+                "step": state.step,
+                "x": num.to_bytes(state.x),
+                "d": num.to_bytes(state.d),
+                "committed": committed,
+            },
+            use_bin_type=True,
+        )
+        header = STATE_MAGIC + bytes([STATE_VERSION])
+        return header + body + hashlib.sha256(header + body).digest()
+
+    def _decode_state(self, data: bytes) -> dict[str, Any]:
+        """Parse a checkpoint; raise ValueError if it is damaged or not ours."""
+        header = STATE_MAGIC + bytes([STATE_VERSION])
+        if not data.startswith(header) or len(data) < len(header) + DIGEST:
+            raise ValueError("not a chainproof run state")
+        if hashlib.sha256(data[:-DIGEST]).digest() != data[-DIGEST:]:
+            raise ValueError("checksum mismatch")
+        obj = msgpack.unpackb(data[len(header):-DIGEST], raw=False)
+        if not isinstance(obj, dict):
+            raise ValueError("malformed")
+        return obj
+
+    def _write_state(self, state: ChainState, committed: int) -> None:
+        self.spool.sync()
+        data = self._encode_state(state, committed)
+        if self.state_path.exists():
+            os.replace(self.state_path, self.prev_path)
+        atomic_write(self.state_path, data)
+        self._last_save = self.clock()
+
+    def _load_state(self) -> dict[str, Any] | None:
+        for path in (self.state_path, self.prev_path):
+            if not path.exists():
+                continue
+            try:
+                obj = self._decode_state(path.read_bytes())
+            except (ValueError, msgpack.UnpackException, OSError) as exc:
+                self._warn(f"checkpoint {path} is unusable ({exc}); trying the older one")
+                continue
+            ident = {k: obj.get(k) for k in self.config.identity()}
+            if ident != self.config.identity():
+                raise UsageError(
+                    f"{path} belongs to a different run ({ident}); remove the .state, .state.prev "
+                    "and .spool files beside the output to start over"
+                )
+            if path == self.prev_path and self.state_path.exists():
+                self._warn(f"resuming from the older checkpoint {path}")
+            return obj
+        return None
+
+    # -- the run ----------------------------------------------------------------------------
+    def run(self) -> RunReport:
+        """Run (or resume) to the end and write the certificate.
+
+        Raises UsageError if the output exists without run state, RunFailed if the hardware keeps
+        failing the Gerbicz check or the spool is damaged.
+        """
+        cfg, num = self.config, self.config.number
+        t0 = self.clock()
+        saved = self._load_state()
+        if saved is None and self.out.exists():
+            raise UsageError(f"{self.out} already exists; choose another output name")
+        grid = cfg.grid(self.fault_steps)
+        stats = ChainStats()
+        state: ChainState | None = None
+        if saved is not None:
+            state = ChainState(saved["step"], num.from_bytes(saved["x"]), num.from_bytes(saved["d"]))
+        if saved is not None and not self.spool_path.exists():
+            raise RunFailed(f"{self.spool_path} is missing; remove the .state files to start over")
+        self.spool = Spool(self.spool_path, num, fresh=saved is None)
+        try:
+            committed = saved["committed"] if saved else 0
+            self.spool.keep(committed)
+            for j in range(1, committed + 1):
+                self.spool.read_record(j)
+            self._last_save = self.clock()
+
+            def on_stop(step: int, x: mpz) -> None:
+                j = grid.index(step)
+                assert j is not None
+                self.spool.write(j, x)
+
+            def on_commit(st: ChainState) -> None:
+                if st.step == cfg.squarings or self.clock() - self._last_save >= self.checkpoint_seconds:
+                    self._write_state(st, grid.covered(st.step))
+
+            def on_rollback(st: ChainState) -> None:
+                self.spool.keep(grid.covered(st.step))
+
+            chain = GerbiczChain(
+                num, mpz(cfg.base), cfg.squarings, cfg.block, cfg.blocks_per_check,
+                grid=grid, on_stop=on_stop, on_commit=on_commit, on_rollback=on_rollback,
+                fault=self.fault, max_failures=self.max_failures, stats=stats,
+                progress=(lambda s: self.progress(s, cfg.squarings)) if self.progress else None,
+            )
+            if state is None or state.step < cfg.squarings:
+                final = chain.run(state)
+            else:
+                final = state.x
+            digests = tuple(self.spool.read_record(j)[1] for j in range(1, grid.count + 1))
+            st = Statement(num, cfg.base, cfg.squarings, cfg.depth, cfg.challenge_bits, final, digests)
+            mus = prove(st, self.spool.read)
+        finally:
+            self.spool.close()
+        cert = UnverifiedCertificate(
+            number=num.text, test=TEST_FERMAT, base=cfg.base, squarings=cfg.squarings,
+            depth=cfg.depth, challenge_bits=cfg.challenge_bits, final=num.to_bytes(final),
+            mu=tuple(num.to_bytes(m) for m in mus), checkpoints=digests,
+        )
+        if self.key is not None:
+            cert = replace(cert, signer=raw_public(self.key))
+            cert = replace(cert, signature=sign(self.key, cert.signed_bytes()))
+        data = encode(cert)
+        atomic_write(self.out, data)
+        for path in (self.spool_path, self.state_path, self.prev_path):
+            path.unlink(missing_ok=True)
+        result, residue64 = fermat_verdict(num, cfg.base, final)
+        return RunReport(
+            certificate=self.out,
+            certificate_bytes=len(data),
+            seconds=self.clock() - t0,
+            squarings=stats.squarings,
+            depth=cfg.depth,
+            gerbicz_checks=stats.checks,
+            errors_recovered=stats.recoveries,
+            resumed_at=state.step if state is not None else None,
+            result=result,
+            residue64=residue64,
+            warnings=self.warnings,
+        )

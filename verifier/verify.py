@@ -1,0 +1,172 @@
+"""Certificate verification: the only road from an UnverifiedCertificate to a VerifiedResult.
+
+Trust decisions live in a :class:`VerificationPolicy`; everything that can be wrong with a
+certificate raises :class:`~verifier.errors.Rejected` with a one-line reason.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+from gmpy2 import mpz
+
+from .codec import MAX_CERTIFICATE_BYTES, MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate
+from .errors import Rejected, UsageError
+from .gerbicz import ChainStats, GerbiczChain, default_block
+from .numbers import Mersenne, fermat_verdict, parse_number, validate_base
+from .proof import Statement, reduce_claim, residue_digest
+from .signing import fingerprint, signature_valid
+
+PRP_CAUTION = (
+    "Caution: a Fermat PRP result is not a primality proof. 'probable-prime' means the number "
+    "passed a Fermat test, which some composites also pass; 'composite' is definite."
+)
+
+DIGEST_BYTES = 32
+MIN_CHALLENGE_BITS = 64
+MAX_CHALLENGE_BITS = 256
+
+
+@dataclass(frozen=True)
+class VerificationPolicy:
+    """Who and what the verifier accepts.
+
+    ``trusted_signers``: raw Ed25519 public keys; None accepts any valid signature. An empty set is
+    refused (it would silently trust nobody or, worse, be read as "no restriction").
+    ``unsafe_accept_unsigned``: accept certificates without a signature; off by default and named
+    so that nobody switches it on by accident.
+    """
+
+    trusted_signers: frozenset[bytes] | None = None
+    unsafe_accept_unsigned: bool = False
+    min_depth: int = 1
+    min_challenge_bits: int = MIN_CHALLENGE_BITS
+    max_certificate_bytes: int = MAX_CERTIFICATE_BYTES
+
+    def __post_init__(self) -> None:
+        if self.trusted_signers is not None and not self.trusted_signers:
+            raise ValueError("trusted_signers is empty: pass None to accept any valid signature")
+        if self.min_challenge_bits < MIN_CHALLENGE_BITS:
+            raise ValueError(f"min_challenge_bits below {MIN_CHALLENGE_BITS} is not allowed")
+
+
+@dataclass(frozen=True)
+class VerifiedResult:
+    """What a verified certificate establishes. Only :func:`verify` creates one."""
+
+    number: str
+    test: str
+    base: int
+    result: str  # "probable-prime" | "composite"
+    residue64: str  # low 64 bits of base^(N-1) mod N, 16 hex digits
+    claimed_squarings: int
+    depth: int
+    squarings: int  # squarings the verifier did (head + final segment + its own checks)
+    seconds: float
+    signer: str | None  # fingerprint, or None for an unsigned certificate accepted by policy
+    final_digest: str  # SHA-256 of the final residue, hex
+    caution: str = field(default=PRP_CAUTION)
+
+
+def _check_signature(cert: UnverifiedCertificate, policy: VerificationPolicy) -> str | None:
+    if cert.signer is None or cert.signature is None:
+        if not policy.unsafe_accept_unsigned:
+            raise Rejected("certificate is unsigned and the policy requires a signature")
+        return None
+    if not signature_valid(cert.signer, cert.signed_bytes(), cert.signature):
+        raise Rejected("signature does not verify")
+    if policy.trusted_signers is not None and cert.signer not in policy.trusted_signers:
+        raise Rejected(f"signer {fingerprint(cert.signer)} is not a trusted key")
+    return fingerprint(cert.signer)
+
+
+def _residue(num: Mersenne, data: bytes, what: str) -> mpz:
+    if len(data) != num.nbytes:
+        raise Rejected(f"{what} is {len(data)} bytes, expected {num.nbytes}")
+    x = num.from_bytes(data)
+    if not 0 < x < num.N:
+        raise Rejected(f"{what} is outside [1, N-1]")
+    if not num.is_unit(x):
+        raise Rejected(f"{what} is not a unit modulo N")
+    return x
+
+
+def statement_of(cert: UnverifiedCertificate, policy: VerificationPolicy) -> Statement:
+    """Check everything that needs no squaring and build the proof statement.
+
+    Raises Rejected for any structural problem.
+    """
+    if cert.test != TEST_FERMAT:
+        raise Rejected(f"unknown test {cert.test!r}")
+    try:
+        num = parse_number(cert.number)
+    except UsageError as exc:
+        raise Rejected(str(exc)) from None
+    if cert.number != num.text:
+        raise Rejected(f"number not in canonical spelling (expected {num.text!r})")
+    if cert.squarings != num.p:
+        raise Rejected(f"squarings is {cert.squarings}, a Fermat test of {num.text} needs {num.p}")
+    try:
+        validate_base(num, cert.base)
+    except UsageError as exc:
+        raise Rejected(str(exc)) from None
+    bits = cert.challenge_bits
+    if bits % 8 or not MIN_CHALLENGE_BITS <= bits <= MAX_CHALLENGE_BITS:
+        raise Rejected(f"challenge_bits {bits} not a multiple of 8 in [64, 256]")
+    if bits < policy.min_challenge_bits:
+        raise Rejected(f"challenge_bits {bits} below the policy minimum {policy.min_challenge_bits}")
+    d = cert.depth
+    if not 1 <= d <= MAX_DEPTH or (1 << d) > cert.squarings:
+        raise Rejected(f"depth {d} impossible for {cert.squarings} squarings")
+    if d < policy.min_depth:
+        raise Rejected(f"depth {d} below the policy minimum {policy.min_depth}")
+    if len(cert.mu) != d:
+        raise Rejected(f"{len(cert.mu)} proof values for depth {d}")
+    if len(cert.checkpoints) != 1 << d:
+        raise Rejected(f"{len(cert.checkpoints)} checkpoint hashes, expected {1 << d}")
+    if any(len(c) != DIGEST_BYTES for c in cert.checkpoints):
+        raise Rejected("a checkpoint hash is not 32 bytes")
+    final = _residue(num, cert.final, "final residue")
+    if cert.checkpoints[-1] != hashlib.sha256(cert.final).digest():
+        raise Rejected("last checkpoint hash does not match the final residue")
+    # mu_1 is itself a captured residue (the midpoint), so its hash must be in the list.
+    if cert.checkpoints[(1 << (d - 1)) - 1] != hashlib.sha256(cert.mu[0]).digest():
+        raise Rejected("midpoint checkpoint hash does not match the first proof value")
+    return Statement(num, cert.base, cert.squarings, d, bits, final, cert.checkpoints)
+
+
+def verify(
+    cert: UnverifiedCertificate,
+    policy: VerificationPolicy,
+    *,
+    clock: Callable[[], float] = time.perf_counter,
+) -> VerifiedResult:
+    """Verify a certificate under ``policy``. Raises Rejected with a reason; no partial results."""
+    t0 = clock()
+    signer = _check_signature(cert, policy)
+    st = statement_of(cert, policy)
+    num = st.number
+    mus = [_residue(num, m, f"proof value {i + 1}") for i, m in enumerate(cert.mu)]
+    x, y, s = reduce_claim(st, mus)
+    stats = ChainStats(squarings=st.head)
+    block, per_check = default_block(s)
+    got = GerbiczChain(num, x, s, block, per_check, stats=stats).run()
+    if got != y:
+        raise Rejected("proof does not verify: the final segment does not match the claim")
+    result, residue64 = fermat_verdict(num, cert.base, st.final)
+    return VerifiedResult(
+        number=num.text,
+        test=cert.test,
+        base=cert.base,
+        result=result,
+        residue64=residue64,
+        claimed_squarings=cert.squarings,
+        depth=st.depth,
+        squarings=stats.squarings,
+        seconds=clock() - t0,
+        signer=signer,
+        final_digest=residue_digest(num, st.final).hex(),
+    )
