@@ -1,0 +1,315 @@
+"""The ``chainproof`` command line: parse, call the library, print. No logic lives only here.
+
+Exit codes: 0 success (``check``: verified), 1 rejected certificate or failed run, 2 usage or I/O
+error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from . import __version__
+from .codec import UnverifiedCertificate, decode_unverified
+from .engine import Run, RunConfig
+from .errors import Rejected, RunFailed, UsageError
+from .numbers import fermat_verdict, parse_number
+from .signing import (
+    fingerprint,
+    generate_keypair,
+    load_private_key,
+    load_public_key,
+    raw_public,
+)
+from .verify import PRP_CAUTION, VerificationPolicy, verify
+
+EXTENSION = ".cpc"
+EXIT_OK, EXIT_REJECTED, EXIT_USAGE = 0, 1, 2
+
+
+def _emit(args: argparse.Namespace, obj: dict[str, Any], lines: Sequence[str]) -> None:
+    if args.json:
+        print(json.dumps(obj, sort_keys=True))
+    else:
+        print("\n".join(lines))
+
+
+def _passphrase(args: argparse.Namespace) -> bytes | None:
+    name = getattr(args, "passphrase_env", None)
+    if not name:
+        return None
+    value = os.environ.get(name)
+    if value is None:
+        raise UsageError(f"environment variable {name} (named by --passphrase-env) is not set")
+    return value.encode()
+
+
+def _read_certificate(path: Path, max_bytes: int) -> bytes:
+    try:
+        size = path.stat().st_size
+        if size > max_bytes:
+            raise Rejected(f"certificate is {size} bytes, above the limit of {max_bytes}")
+        return path.read_bytes()
+    except OSError as exc:
+        raise UsageError(f"cannot read {path}: {exc.strerror}") from None
+
+
+@contextmanager
+def _progress_bar(enabled: bool, label: str) -> Iterator[Callable[[int, int], None] | None]:
+    """A rich progress bar with rate and ETA on a terminal; nothing otherwise."""
+    if not enabled:
+        yield None
+        return
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeRemainingColumn,
+    )
+
+    columns = (
+        TextColumn("{task.description}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TextColumn("{task.fields[rate]:>9} sq/s"),
+        TimeRemainingColumn(),
+    )
+    with Progress(*columns, transient=True) as bar:
+        task = bar.add_task(label, total=None, rate="")
+
+        def update(step: int, total: int) -> None:
+            elapsed = bar.tasks[0].elapsed or 0.0
+            rate = f"{step / elapsed:,.0f}" if elapsed > 0 else ""
+            bar.update(task, completed=step, total=total, rate=rate)
+
+        yield update
+
+
+# -- commands ---------------------------------------------------------------------------------
+def cmd_keygen(args: argparse.Namespace) -> int:
+    pub, fp = generate_keypair(Path(args.output), _passphrase(args))
+    _emit(
+        args,
+        {"private_key": args.output, "public_key": str(pub), "fingerprint": fp},
+        [f"private key  {args.output}  (mode 0600; keep it secret)", f"public key   {pub}",
+         f"fingerprint  {fp}"],
+    )
+    return EXIT_OK
+
+
+def cmd_prove(args: argparse.Namespace) -> int:
+    number = parse_number(args.number)
+    key = load_private_key(Path(args.key), _passphrase(args)) if args.key else None
+    out = Path(args.output) if args.output else Path(f"m{number.p}{EXTENSION}")
+    config = RunConfig(number, base=args.base, depth=args.depth)
+    show_bar = not args.json and sys.stderr.isatty()
+
+    def warn(message: str) -> None:
+        print(f"chainproof: warning: {message}", file=sys.stderr)
+
+    with _progress_bar(show_bar, f"PRP {number.text}") as bar:
+        report = Run(config, out, key=key, checkpoint_seconds=args.checkpoint_every,
+                     progress=bar, warn=warn).run()
+    obj = {
+        "number": number.text,
+        "result": report.result,
+        "residue64": report.residue64,
+        "certificate": str(report.certificate),
+        "certificate_bytes": report.certificate_bytes,
+        "seconds": round(report.seconds, 3),
+        "squarings": report.squarings,
+        "depth": report.depth,
+        "gerbicz_checks": report.gerbicz_checks,
+        "errors_recovered": report.errors_recovered,
+        "resumed_at": report.resumed_at,
+        "signer": fingerprint(raw_public(key)) if key else None,
+        "caution": PRP_CAUTION,
+    }
+    resumed = "" if report.resumed_at is None else f" (resumed at step {report.resumed_at:,})"
+    _emit(args, obj, [
+        f"{number.text}: {report.result} (base {args.base}), residue64 {report.residue64}",
+        f"  run          {report.squarings:,} squarings in {report.seconds:.2f} s{resumed}",
+        f"  checks       {report.gerbicz_checks} Gerbicz checks, {report.errors_recovered} errors "
+        "recovered",
+        f"  certificate  {report.certificate} ({report.certificate_bytes:,} bytes, depth "
+        f"{report.depth}, {'signed ' + obj['signer'] if key else 'UNSIGNED'})",
+        PRP_CAUTION,
+    ])
+    return EXIT_OK
+
+
+def _policy(args: argparse.Namespace) -> VerificationPolicy:
+    keys = frozenset(load_public_key(Path(k)) for k in args.trusted_key) if args.trusted_key else None
+    return VerificationPolicy(
+        trusted_signers=keys,
+        unsafe_accept_unsigned=args.accept_unsigned,
+        min_depth=args.min_depth,
+    )
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    policy = _policy(args)
+    path = Path(args.certificate)
+    try:
+        data = _read_certificate(path, policy.max_certificate_bytes)
+        result = verify(decode_unverified(data, max_bytes=policy.max_certificate_bytes), policy)
+    except Rejected as exc:
+        _emit(args, {"verified": False, "certificate": str(path), "reason": exc.reason},
+              [f"REJECTED  {path}: {exc.reason}"])
+        return EXIT_REJECTED
+    signer = result.signer or "UNSIGNED (accepted only because of --accept-unsigned)"
+    speedup = result.claimed_squarings / max(1, result.squarings)
+    obj = {
+        "verified": True,
+        "certificate": str(path),
+        "number": result.number,
+        "test": result.test,
+        "base": result.base,
+        "result": result.result,
+        "residue64": result.residue64,
+        "depth": result.depth,
+        "squarings": result.squarings,
+        "claimed_squarings": result.claimed_squarings,
+        "seconds": round(result.seconds, 3),
+        "signer": result.signer,
+        "unsigned": result.signer is None,
+        "caution": result.caution,
+    }
+    _emit(args, obj, [
+        f"VERIFIED  {result.number}: {result.result} (base {result.base})",
+        f"  residue64  {result.residue64}",
+        f"  proof      depth {result.depth}; {result.squarings:,} squarings instead of "
+        f"{result.claimed_squarings:,} ({speedup:,.0f}x fewer)",
+        f"  signer     {signer}",
+        f"  time       {result.seconds:.3f} s",
+        result.caution,
+    ])
+    return EXIT_OK
+
+
+def _inspect_fields(cert: UnverifiedCertificate) -> dict[str, Any]:
+    obj: dict[str, Any] = {
+        "number": cert.number,
+        "test": cert.test,
+        "base": cert.base,
+        "squarings": cert.squarings,
+        "depth": cert.depth,
+        "challenge_bits": cert.challenge_bits,
+        "proof_values": len(cert.mu),
+        "checkpoint_hashes": len(cert.checkpoints),
+        "signer": fingerprint(cert.signer) if cert.signer else None,
+    }
+    try:
+        number = parse_number(cert.number)
+        final = number.from_bytes(cert.final)
+        if 0 < final < number.N:
+            obj["claimed_result"], obj["claimed_residue64"] = fermat_verdict(number, cert.base, final)
+    except (UsageError, ZeroDivisionError, ValueError):
+        pass
+    return obj
+
+
+def cmd_inspect(args: argparse.Namespace) -> int:
+    path = Path(args.certificate)
+    try:
+        data = _read_certificate(path, VerificationPolicy().max_certificate_bytes)
+        cert = decode_unverified(data)
+    except Rejected as exc:
+        _emit(args, {"readable": False, "certificate": str(path), "reason": exc.reason},
+              [f"UNREADABLE  {path}: {exc.reason}"])
+        return EXIT_REJECTED
+    obj = {"readable": True, "verified": False, "certificate": str(path), "bytes": len(data),
+           **_inspect_fields(cert)}
+    claim = obj.get("claimed_result", "unreadable final residue")
+    _emit(args, obj, [
+        f"{path}: certificate CLAIMS (not verified; run 'chainproof check')",
+        f"  number      {cert.number}   test {cert.test}, base {cert.base}",
+        f"  claim       {claim}, residue64 {obj.get('claimed_residue64', '?')}",
+        f"  proof       depth {cert.depth}, {cert.squarings:,} squarings, "
+        f"{len(cert.checkpoints)} checkpoint hashes, {cert.challenge_bits}-bit challenges",
+        f"  signer      {obj['signer'] or 'none (unsigned)'}",
+        f"  size        {len(data):,} bytes",
+        PRP_CAUTION,
+    ])
+    return EXIT_OK
+
+
+# -- parser -------------------------------------------------------------------------------------
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="chainproof",
+        description="Certified Fermat PRP runs: run a test under a Gerbicz check, emit a "
+        "certificate (Pietrzak halving proof), and check certificates quickly.",
+    )
+    parser.add_argument("--version", action="version", version=f"chainproof {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    def add(name: str, help_text: str) -> argparse.ArgumentParser:
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        p.add_argument("--json", action="store_true", help="print one JSON object")
+        return p
+
+    p = add("keygen", "create an Ed25519 signing key (PEM, mode 0600) and KEY.pub beside it")
+    p.add_argument("-o", "--output", required=True, help="private key file to create")
+    p.add_argument("--passphrase-env", metavar="VAR", help="encrypt with the passphrase in $VAR")
+    p.set_defaults(func=cmd_keygen)
+
+    p = add("prove", "run a Fermat PRP test and write a certificate (resumes if interrupted)")
+    p.add_argument("number", help="the number, written 2^p-1 (p prime)")
+    p.add_argument("-o", "--output", help=f"certificate file (default m<p>{EXTENSION})")
+    p.add_argument("--key", help="sign with this Ed25519 private key")
+    p.add_argument("--passphrase-env", metavar="VAR", help="the key's passphrase is in $VAR")
+    p.add_argument("--base", type=int, default=3, help="Fermat base (default 3)")
+    p.add_argument("--depth", type=int, default=8,
+                   help="proof depth: the verifier does about 1/2^depth of the work (default 8)")
+    p.add_argument("--checkpoint-every", type=float, default=60.0, metavar="SECONDS",
+                   help="write run state at most this often (default 60)")
+    p.set_defaults(func=cmd_prove)
+
+    p = add("check", "verify a certificate (exit 0 verified, 1 rejected, 2 usage/IO error)")
+    p.add_argument("certificate")
+    p.add_argument("--trusted-key", action="append", metavar="KEY.pub",
+                   help="accept only signatures by this key (repeatable)")
+    p.add_argument("--accept-unsigned", action="store_true",
+                   help="UNSAFE: also accept certificates without a signature")
+    p.add_argument("--min-depth", type=int, default=1, help="reject proofs shallower than this")
+    p.set_defaults(func=cmd_check)
+
+    p = add("inspect", "show what a certificate claims, without verifying it")
+    p.add_argument("certificate")
+    p.set_defaults(func=cmd_inspect)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        code: int = args.func(args)
+        return code
+    except UsageError as exc:
+        _error(args, str(exc))
+        return EXIT_USAGE
+    except RunFailed as exc:
+        _error(args, str(exc))
+        return EXIT_REJECTED
+    except KeyboardInterrupt:
+        _error(args, "interrupted; run the same command again to resume")
+        return 130
+
+
+def _error(args: argparse.Namespace, message: str) -> None:
+    if getattr(args, "json", False):
+        print(json.dumps({"error": message}))
+    print(f"chainproof: error: {message}", file=sys.stderr)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
