@@ -201,7 +201,6 @@ def _inspect_fields(cert: UnverifiedCertificate) -> dict[str, Any]:
         "base": cert.base,
         "squarings": cert.squarings,
         "depth": cert.depth,
-        "challenge_bits": cert.challenge_bits,
         "proof_values": len(cert.mu),
         "checkpoint_hashes": len(cert.checkpoints),
         "signer": fingerprint(cert.signer) if cert.signer else None,
@@ -233,7 +232,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"  number      {cert.number}   test {cert.test}, base {cert.base}",
         f"  claim       {claim}, residue64 {obj.get('claimed_residue64', '?')}",
         f"  proof       depth {cert.depth}, {cert.squarings:,} squarings, "
-        f"{len(cert.checkpoints)} checkpoint hashes, {cert.challenge_bits}-bit challenges",
+        f"{len(cert.checkpoints)} checkpoint hashes",
         f"  signer      {obj['signer'] or 'none (unsigned)'}",
         f"  size        {len(data):,} bytes",
         PRP_CAUTION,

@@ -30,7 +30,6 @@ MAX_CERTIFICATE_BYTES = 1 << 30
 
 _FIELDS: dict[str, type] = {
     "base": int,
-    "challenge_bits": int,
     "checkpoints": list,
     "depth": int,
     "final": bytes,
@@ -51,7 +50,6 @@ class UnverifiedCertificate:
     base: int
     squarings: int
     depth: int
-    challenge_bits: int
     final: bytes
     mu: tuple[bytes, ...]
     checkpoints: tuple[bytes, ...]
@@ -61,7 +59,6 @@ class UnverifiedCertificate:
     def body(self, *, with_signature: bool = True) -> dict[str, Any]:
         m: dict[str, Any] = {
             "base": self.base,
-            "challenge_bits": self.challenge_bits,
             "checkpoints": list(self.checkpoints),
             "depth": self.depth,
             "final": self.final,
@@ -163,7 +160,6 @@ def decode_unverified(data: bytes, *, max_bytes: int = MAX_CERTIFICATE_BYTES) ->
         base=obj["base"],
         squarings=obj["squarings"],
         depth=obj["depth"],
-        challenge_bits=obj["challenge_bits"],
         final=obj["final"],
         mu=tuple(obj["mu"]),
         checkpoints=tuple(obj["checkpoints"]),

@@ -73,15 +73,12 @@ class RunConfig:
     depth: int = 8
     block: int = 0  # Gerbicz block length L; 0 picks default_block
     blocks_per_check: int = 0  # B; 0 picks default_block
-    challenge_bits: int = 64
 
     def __post_init__(self) -> None:
         validate_base(self.number, self.base)
         if not 1 <= self.depth <= MAX_DEPTH or (1 << self.depth) > self.squarings:
             raise UsageError(f"depth {self.depth} impossible: need 1 <= depth <= "
                              f"{min(MAX_DEPTH, self.squarings.bit_length() - 1)}")
-        if self.challenge_bits % 8 or not 64 <= self.challenge_bits <= 256:
-            raise UsageError("challenge bits must be a multiple of 8 in [64, 256]")
         L, B = default_block(self.squarings)
         object.__setattr__(self, "block", self.block or L)
         object.__setattr__(self, "blocks_per_check", self.blocks_per_check or B)
@@ -103,7 +100,6 @@ class RunConfig:
             "depth": self.depth,
             "block": self.block,
             "blocks_per_check": self.blocks_per_check,
-            "challenge_bits": self.challenge_bits,
         }
 
 
@@ -301,13 +297,13 @@ class Run:
             else:
                 final = state.x
             digests = tuple(self.spool.read_record(j)[1] for j in range(1, grid.count + 1))
-            st = Statement(num, cfg.base, cfg.squarings, cfg.depth, cfg.challenge_bits, final, digests)
+            st = Statement(num, cfg.base, cfg.squarings, cfg.depth, final, digests)
             mus = prove(st, self.spool.read)
         finally:
             self.spool.close()
         cert = UnverifiedCertificate(
             number=num.text, test=TEST_FERMAT, base=cfg.base, squarings=cfg.squarings,
-            depth=cfg.depth, challenge_bits=cfg.challenge_bits, final=num.to_bytes(final),
+            depth=cfg.depth, final=num.to_bytes(final),
             mu=tuple(num.to_bytes(m) for m in mus), checkpoints=digests,
         )
         if self.key is not None:

@@ -2,8 +2,8 @@
 
 Only Mersenne numbers N = 2^p - 1 (p prime, p >= 3) are supported in this version. Arithmetic
 works on gmpy2 ``mpz`` values kept in [0, N). Reduction modulo 2^p - 1 uses the identity
-2^p = 1 (mod N): a value v < 2^(2p) is folded to (v & N) + (v >> p) <= 2N, and one conditional
-subtraction brings it into [0, N).
+2^p = 1 (mod N): a value v is folded to (v & N) + (v >> p), and one conditional
+subtraction brings it into [0, N) for any v <= (N-1)^2.
 """
 
 from __future__ import annotations
@@ -81,7 +81,11 @@ class Mersenne:
 
     # -- arithmetic -----------------------------------------------------------------------
     def reduce(self, v: mpz) -> mpz:
-        """Reduce 0 <= v < 2^(2p) into [0, N)."""
+        """Reduce 0 <= v <= (N-1)^2 (a product of two reduced values) into [0, N).
+
+        The fold leaves at most (N-1) + (N-2) < 2N, so one conditional subtraction suffices. (At
+        v = 2^(2p)-1 the fold gives 2N; that value is outside the contract.)
+        """
         N, p = self.N, self.p
         v = (v & N) + (v >> p)
         if v >= N:

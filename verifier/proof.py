@@ -9,7 +9,7 @@ y = the final residue base^(2^T), and the proof covers the remaining 2^depth * s
 s = T div 2^depth. The prover's captured residues are u_j = base^(2^(h + j*s)), j = 1..2^depth.
 
 Challenges: r_i = c_i + lam * h_i, where lam is the exponent of the subgroup of elements of known
-order (2p for 2^p - 1), c_i = 2^(T_i/2) mod lam, and h_i is ``challenge_bits`` bits of a SHA-256
+order (2p for 2^p - 1), c_i = 2^(T_i/2) mod lam, and h_i is CHALLENGE_BITS = 64 bits of a SHA-256
 chain over the statement and mu_1..mu_i. With r_i = 2^(T_i/2) (mod lam), a claim off by a factor g
 of known order stays off by exactly g through every halving (spec/protocol.md, section 5).
 """
@@ -25,6 +25,8 @@ from gmpy2 import mpz
 from .numbers import Mersenne
 
 DOMAIN = b"chainproof/fiat-shamir/v1"
+#: Hash entropy of each challenge on top of the fixed residue modulo lam (format version 1).
+CHALLENGE_BITS = 64
 
 
 def residue_digest(number: Mersenne, x: mpz) -> bytes:
@@ -45,7 +47,6 @@ class Statement:
     base: int
     squarings: int
     depth: int
-    challenge_bits: int
     final: mpz
     checkpoint_digests: tuple[bytes, ...]
 
@@ -67,7 +68,7 @@ class Statement:
         h = hashlib.sha256()
         _field(h, DOMAIN)
         _field(h, num.text.encode())
-        for v in (self.base, self.squarings, self.depth, self.challenge_bits):
+        for v in (self.base, self.squarings, self.depth):
             _field(h, v.to_bytes(8, "big"))
         _field(h, num.to_bytes(self.final))
         _field(h, hashlib.sha256(b"".join(self.checkpoint_digests)).digest())
@@ -90,7 +91,7 @@ class Challenges:
         _field(h, self.level.to_bytes(8, "big"))
         _field(h, st.number.to_bytes(mu))
         self.state = h.digest()
-        entropy = int.from_bytes(self.state[: st.challenge_bits // 8], "big")
+        entropy = int.from_bytes(self.state[: CHALLENGE_BITS // 8], "big")
         lam = st.number.known_order_exponent
         half = st.segment << (st.depth - self.level)  # T_i / 2
         return pow(2, half, lam) + lam * entropy
@@ -126,7 +127,7 @@ def prove(st: Statement, capture: Callable[[int], mpz]) -> list[mpz]:
 
 def reduce_claim(st: Statement, mus: Sequence[mpz]) -> tuple[mpz, mpz, int]:
     """The verifier's halvings: return (x, y, s) such that the certificate is sound iff
-    x^(2^s) = y. Costs about 2 * depth exponentiations by (challenge_bits + log2(2p))-bit numbers."""
+    x^(2^s) = y. Costs about 2 * depth exponentiations by (64 + log2(2p))-bit numbers."""
     num = st.number
     ch = Challenges(st)
     x, y = st.start(), st.final

@@ -26,8 +26,6 @@ PRP_CAUTION = (
 )
 
 DIGEST_BYTES = 32
-MIN_CHALLENGE_BITS = 64
-MAX_CHALLENGE_BITS = 256
 
 
 @dataclass(frozen=True)
@@ -43,14 +41,11 @@ class VerificationPolicy:
     trusted_signers: frozenset[bytes] | None = None
     unsafe_accept_unsigned: bool = False
     min_depth: int = 1
-    min_challenge_bits: int = MIN_CHALLENGE_BITS
     max_certificate_bytes: int = MAX_CERTIFICATE_BYTES
 
     def __post_init__(self) -> None:
         if self.trusted_signers is not None and not self.trusted_signers:
             raise ValueError("trusted_signers is empty: pass None to accept any valid signature")
-        if self.min_challenge_bits < MIN_CHALLENGE_BITS:
-            raise ValueError(f"min_challenge_bits below {MIN_CHALLENGE_BITS} is not allowed")
 
 
 @dataclass(frozen=True)
@@ -94,8 +89,10 @@ def _residue(num: Mersenne, data: bytes, what: str) -> mpz:
     return x
 
 
-def statement_of(cert: UnverifiedCertificate, policy: VerificationPolicy) -> Statement:
-    """Check everything that needs no squaring and build the proof statement.
+def statement_of(
+    cert: UnverifiedCertificate, policy: VerificationPolicy
+) -> tuple[Statement, list[mpz]]:
+    """Check everything that needs no squaring; return the proof statement and decoded mu values.
 
     Raises Rejected for any structural problem.
     """
@@ -113,11 +110,6 @@ def statement_of(cert: UnverifiedCertificate, policy: VerificationPolicy) -> Sta
         validate_base(num, cert.base)
     except UsageError as exc:
         raise Rejected(str(exc)) from None
-    bits = cert.challenge_bits
-    if bits % 8 or not MIN_CHALLENGE_BITS <= bits <= MAX_CHALLENGE_BITS:
-        raise Rejected(f"challenge_bits {bits} not a multiple of 8 in [64, 256]")
-    if bits < policy.min_challenge_bits:
-        raise Rejected(f"challenge_bits {bits} below the policy minimum {policy.min_challenge_bits}")
     d = cert.depth
     if not 1 <= d <= MAX_DEPTH or (1 << d) > cert.squarings:
         raise Rejected(f"depth {d} impossible for {cert.squarings} squarings")
@@ -130,12 +122,13 @@ def statement_of(cert: UnverifiedCertificate, policy: VerificationPolicy) -> Sta
     if any(len(c) != DIGEST_BYTES for c in cert.checkpoints):
         raise Rejected("a checkpoint hash is not 32 bytes")
     final = _residue(num, cert.final, "final residue")
+    mus = [_residue(num, m, f"proof value {i + 1}") for i, m in enumerate(cert.mu)]
     if cert.checkpoints[-1] != hashlib.sha256(cert.final).digest():
         raise Rejected("last checkpoint hash does not match the final residue")
     # mu_1 is itself a captured residue (the midpoint), so its hash must be in the list.
     if cert.checkpoints[(1 << (d - 1)) - 1] != hashlib.sha256(cert.mu[0]).digest():
         raise Rejected("midpoint checkpoint hash does not match the first proof value")
-    return Statement(num, cert.base, cert.squarings, d, bits, final, cert.checkpoints)
+    return Statement(num, cert.base, cert.squarings, d, final, cert.checkpoints), mus
 
 
 def verify(
@@ -147,9 +140,8 @@ def verify(
     """Verify a certificate under ``policy``. Raises Rejected with a reason; no partial results."""
     t0 = clock()
     signer = _check_signature(cert, policy)
-    st = statement_of(cert, policy)
+    st, mus = statement_of(cert, policy)
     num = st.number
-    mus = [_residue(num, m, f"proof value {i + 1}") for i, m in enumerate(cert.mu)]
     x, y, s = reduce_claim(st, mus)
     stats = ChainStats(squarings=st.head)
     block, per_check = default_block(s)
