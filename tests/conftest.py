@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import sys
 from pathlib import Path
 
 import pytest
@@ -12,9 +13,15 @@ from hypothesis import HealthCheck, settings
 from verifier import Run, RunConfig, decode_unverified, parse_number
 from verifier.codec import UnverifiedCertificate
 
+# tools/ holds the fixture generator and the adversarial prover that tests share with it
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tools"))
+
 settings.register_profile(
     "ci", max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow]
 )
+# tools/ holds the fixture generator and the adversarial prover that tests share with it
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tools"))
+
 settings.register_profile("dev", max_examples=15, deadline=None)
 settings.load_profile("ci")
 
