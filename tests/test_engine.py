@@ -11,9 +11,9 @@ import time
 from pathlib import Path
 
 import pytest
+from conftest import det_key
 from gmpy2 import mpz
 
-from conftest import det_key
 from verifier import Run, RunConfig, RunFailed, UsageError, VerificationPolicy, decode_unverified, verify
 from verifier.gerbicz import GerbiczChain
 from verifier.numbers import Mersenne, parse_number

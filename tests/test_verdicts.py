@@ -6,10 +6,10 @@ from pathlib import Path
 
 import pytest
 import sympy
+from conftest import make_certificate
 from hypothesis import given
 from hypothesis import strategies as st
 
-from conftest import make_certificate
 from verifier import VerificationPolicy, verify
 
 # OEIS A000043, Mersenne prime exponents: the terms below 1300 (values from memory; each one is
@@ -38,7 +38,11 @@ def test_every_prime_exponent_below_1300(tmp_path: Path) -> None:
     assert seen_prp == A000043_BELOW_1300[1:]  # reference: OEIS A000043 (p = 2 is out of scope)
 
 
-@given(p=st.sampled_from(list(sympy.primerange(3, 2500))), depth=st.integers(1, 7), base=st.sampled_from([3, 5, 7, 10, 11]))
+@given(
+    p=st.sampled_from(list(sympy.primerange(3, 2500))),
+    depth=st.integers(1, 7),
+    base=st.sampled_from([3, 5, 7, 10, 11]),
+)
 def test_residue64_matches_builtin_pow(tmp_path_factory: pytest.TempPathFactory, p: int, depth: int, base: int) -> None:
     """residue64 is the low 64 bits of base^(N-1) mod N (reference: Python's built-in pow)."""
     N = 2**p - 1

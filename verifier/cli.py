@@ -133,13 +133,14 @@ def cmd_prove(args: argparse.Namespace) -> int:
         "caution": PRP_CAUTION,
     }
     resumed = "" if report.resumed_at is None else f" (resumed at step {report.resumed_at:,})"
+    signed = f"signed {fingerprint(raw_public(key))}" if key else "UNSIGNED"
     _emit(args, obj, [
         f"{number.text}: {report.result} (base {args.base}), residue64 {report.residue64}",
         f"  run          {report.squarings:,} squarings in {report.seconds:.2f} s{resumed}",
         f"  checks       {report.gerbicz_checks} Gerbicz checks, {report.errors_recovered} errors "
         "recovered",
         f"  certificate  {report.certificate} ({report.certificate_bytes:,} bytes, depth "
-        f"{report.depth}, {'signed ' + obj['signer'] if key else 'UNSIGNED'})",
+        f"{report.depth}, {signed})",
         PRP_CAUTION,
     ])
     return EXIT_OK

@@ -286,11 +286,17 @@ class Run:
             def on_rollback(st: ChainState) -> None:
                 self.spool.keep(grid.covered(st.step))
 
+            report_progress = self.progress
+
+            def on_block(step: int) -> None:
+                if report_progress is not None:
+                    report_progress(step, cfg.squarings)
+
             chain = GerbiczChain(
                 num, mpz(cfg.base), cfg.squarings, cfg.block, cfg.blocks_per_check,
                 grid=grid, on_stop=on_stop, on_commit=on_commit, on_rollback=on_rollback,
                 fault=self.fault, max_failures=self.max_failures, stats=stats,
-                progress=(lambda s: self.progress(s, cfg.squarings)) if self.progress else None,
+                progress=on_block if report_progress is not None else None,
             )
             if state is None or state.step < cfg.squarings:
                 final = chain.run(state)
