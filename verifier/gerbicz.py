@@ -37,6 +37,14 @@ def default_block(total: int) -> tuple[int, int]:
     return side, side
 
 
+def single_check_block(total: int) -> tuple[int, int]:
+    """L and B for one check at the end: L = sqrt(total), so the check and the block
+    multiplications cost about 2*sqrt(total). For an in-memory chain (the verifier's final
+    segment), where an error only means doing the segment again."""
+    side = max(1, math.isqrt(max(total, 1)))
+    return side, max(1, total // side)
+
+
 @dataclass(frozen=True)
 class ChainState:
     """A point of the chain that a passed check covers: step i, x_i and the running product d."""

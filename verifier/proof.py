@@ -125,14 +125,17 @@ def prove(st: Statement, capture: Callable[[int], mpz]) -> list[mpz]:
     return mus
 
 
-def reduce_claim(st: Statement, mus: Sequence[mpz]) -> tuple[mpz, mpz, int]:
-    """The verifier's halvings: return (x, y, s) such that the certificate is sound iff
-    x^(2^s) = y. Costs about 2 * depth exponentiations by (64 + log2(2p))-bit numbers."""
+def reduce_claim(st: Statement, mus: Sequence[mpz]) -> tuple[mpz, mpz, int, int]:
+    """The verifier's halvings: return (x, y, s, squarings) such that the certificate is sound
+    iff x^(2^s) = y; ``squarings`` counts those done so far (the head and the exponentiations,
+    2 * depth of them by (64 + log2(2p))-bit numbers)."""
     num = st.number
     ch = Challenges(st)
     x, y = st.start(), st.final
+    squarings = st.head
     for mu in mus:
         r = ch.next(mu)
         x = num.mul(num.pow(x, r), mu)
         y = num.mul(num.pow(mu, r), y)
-    return x, y, st.segment
+        squarings += 2 * (r.bit_length() - 1)
+    return x, y, st.segment, squarings

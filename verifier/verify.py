@@ -15,7 +15,7 @@ from gmpy2 import mpz
 
 from .codec import MAX_CERTIFICATE_BYTES, MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate
 from .errors import Rejected, UsageError
-from .gerbicz import ChainStats, GerbiczChain, default_block
+from .gerbicz import ChainStats, GerbiczChain, single_check_block
 from .numbers import Mersenne, fermat_verdict, parse_number, validate_base
 from .proof import Statement, reduce_claim, residue_digest
 from .signing import fingerprint, signature_valid
@@ -59,7 +59,7 @@ class VerifiedResult:
     residue64: str  # low 64 bits of base^(N-1) mod N, 16 hex digits
     claimed_squarings: int
     depth: int
-    squarings: int  # squarings the verifier did (head + final segment + its own checks)
+    squarings: int  # every squaring the verifier did: head, halvings, final segment, its check
     seconds: float
     signer: str | None  # fingerprint, or None for an unsigned certificate accepted by policy
     final_digest: str  # SHA-256 of the final residue, hex
@@ -142,9 +142,9 @@ def verify(
     signer = _check_signature(cert, policy)
     st, mus = statement_of(cert, policy)
     num = st.number
-    x, y, s = reduce_claim(st, mus)
-    stats = ChainStats(squarings=st.head)
-    block, per_check = default_block(s)
+    x, y, s, squarings = reduce_claim(st, mus)
+    stats = ChainStats(squarings=squarings)
+    block, per_check = single_check_block(s)
     got = GerbiczChain(num, x, s, block, per_check, stats=stats).run()
     if got != y:
         raise Rejected("proof does not verify: the final segment does not match the claim")
