@@ -77,22 +77,20 @@ def main() -> int:
     c = chainproof("check", str(tampered), *trust, expect=1)
     say(f"  REJECTED: {c['reason']}")
 
-    say("\nSomeone re-signs Ines's certificate with a key the club never issued:")
-    stranger = workdir / "stranger.key"
-    chainproof("keygen", "-o", str(stranger))
-    stolen = workdir / "stolen.cpc"
+    say("\nTomasz, a trusted member, re-signs Ines's certificate to take the credit:")
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
     import dataclasses
 
     from verifier import decode_unverified, encode
     from verifier.signing import load_private_key, raw_public
 
-    skey = load_private_key(stranger)
-    cert = dataclasses.replace(decode_unverified(ines_cert.read_bytes()), signer=raw_public(skey),
+    tkey = load_private_key(runs["tomasz"][1])
+    cert = dataclasses.replace(decode_unverified(ines_cert.read_bytes()), signer=raw_public(tkey),
                                signature=None)
-    stolen.write_bytes(encode(dataclasses.replace(cert, signature=skey.sign(cert.signed_bytes()))))
+    stolen = workdir / "stolen.cpc"
+    stolen.write_bytes(encode(dataclasses.replace(cert, signature=tkey.sign(cert.signed_bytes()))))
     c = chainproof("check", str(stolen), *trust, expect=1)
-    say(f"  REJECTED: {c['reason']}")
+    say(f"  REJECTED: {c['reason']} (the proof is bound to the key that signed the run)")
 
     say(f"\nAll files are in {workdir}/. Inspect one with: chainproof inspect {ines_cert}")
     return 0

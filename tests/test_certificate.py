@@ -131,14 +131,20 @@ def test_honest_certificates_verify_for_random_shapes(
     assert result.depth == depth and result.claimed_squarings == p
 
 
-def test_resigned_by_another_key_is_rejected_by_trust_policy(small: dict[str, bytes]) -> None:
+def test_resigned_by_another_key_is_rejected(small: dict[str, bytes]) -> None:
+    """Taking credit for someone else's run: the new signature is valid, but the proof's
+    challenges are bound to the original signer, so even a policy trusting mallory rejects it."""
     cert = decode_unverified(small["signed"])
     mallory = det_key("mallory")
     other = dataclasses.replace(cert, signer=raw_public(mallory), signature=None)
     other = dataclasses.replace(other, signature=mallory.sign(other.signed_bytes()))
+    trust_mallory = VerificationPolicy(trusted_signers=frozenset({raw_public(mallory)}))
+    with pytest.raises(Rejected, match="proof does not verify"):
+        verify(decode_unverified(encode(other)), trust_mallory)
     trusted = VerificationPolicy(trusted_signers=frozenset({raw_public(det_key())}))
-    assert accepted(encode(other), VerificationPolicy())  # a valid signature, by someone
     assert not accepted(encode(other), trusted)
+    # stripping the signature fails the same way: the proof was bound to the signer
+    assert not accepted(encode(cert.unsigned()), ACCEPT_UNSIGNED)
 
 
 # -- codec structure ---------------------------------------------------------------------------
@@ -221,3 +227,17 @@ def test_checkpoint_hashes_bind_final_and_midpoint(small: dict[str, bytes]) -> N
     cert = decode_unverified(small["unsigned"])
     assert cert.checkpoints[-1] == hashlib.sha256(cert.final).digest()
     assert cert.checkpoints[(1 << (cert.depth - 1)) - 1] == hashlib.sha256(cert.mu[0]).digest()
+
+
+def test_non_string_keys_rejected(small: dict[str, bytes]) -> None:
+    body = _raw(small)
+    mixed = {**body, b"bin-key": 1, "zzz": 2}
+    packed = msgpack.packb(mixed, use_bin_type=True)
+    _reject(HEADER + packed, "keys must be strings")
+
+
+def test_verifier_work_is_bounded_by_policy(small: dict[str, bytes]) -> None:
+    cert = decode_unverified(small["signed"])  # 2^61-1 at depth 3: 5 head + 7 segment squarings
+    with pytest.raises(Rejected, match="policy limit"):
+        verify(cert, VerificationPolicy(max_verifier_squarings=11))
+    verify(cert, VerificationPolicy(max_verifier_squarings=12))

@@ -102,3 +102,14 @@ def test_known_order_exponent_kills_the_known_subgroup() -> None:
         lam = num.known_order_exponent
         for g in (mpz(2), num.N - 1, num.N - 2, mpz(4)):
             assert num.pow(g, lam) == 1
+
+
+def test_bases_in_the_known_subgroup_are_refused() -> None:
+    # 2047 - 2 = 2045 = -2 mod 2047: every Mersenne number passes a Fermat test to base -2^k
+    num = Mersenne(11)
+    assert pow(2045, 2046, 2047) == 1  # reference: built-in pow; yet 2047 = 23 * 89
+    with pytest.raises(UsageError, match="2\\^k"):
+        validate_base(num, 2045)
+    with pytest.raises(UsageError, match="2\\^k"):
+        validate_base(num, 2047 - 64)
+    validate_base(Mersenne(3), 3)  # p = 3: the subgroup is the whole group; allowed

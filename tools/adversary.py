@@ -24,9 +24,12 @@ def known_subgroup(num: Mersenne) -> list[mpz]:
     return powers + [num.N - g for g in powers]
 
 
-def forge(num: Mersenne, base: int, depth: int, g: mpz) -> tuple[UnverifiedCertificate, int]:
+def forge(
+    num: Mersenne, base: int, depth: int, g: mpz, signer: bytes = b""
+) -> tuple[UnverifiedCertificate, int]:
     """Build a certificate claiming final = true_final * g. Returns it and how many candidate
-    (mu, challenge) pairs were tried."""
+    (mu, challenge) pairs were tried. ``signer`` is the public key the certificate will be signed
+    with (the transcript binds it); the caller signs."""
     T = num.p
     head, seg = T % (1 << depth), T >> depth
     u = [num.square_n(mpz(base), head)]
@@ -50,7 +53,7 @@ def forge(num: Mersenne, base: int, depth: int, g: mpz) -> tuple[UnverifiedCerti
             mu = num.mul(mu_true, h)
             if level == 1:  # mu_1's hash is in the list, and the list feeds the first challenge
                 digests[mid] = hashlib.sha256(num.to_bytes(mu)).digest()
-                trial = Challenges(Statement(num, base, T, depth, claim, tuple(digests)))
+                trial = Challenges(Statement(num, base, T, depth, claim, tuple(digests), signer))
             else:
                 assert ch is not None
                 trial = Challenges.__new__(Challenges)

@@ -29,6 +29,7 @@ from adversary import forge  # noqa: E402
 from verifier import Run, RunConfig, decode_unverified, encode, parse_number  # noqa: E402
 from verifier.codec import HEADER, MAGIC, UnverifiedCertificate  # noqa: E402
 from verifier.numbers import Mersenne  # noqa: E402
+from verifier.signing import raw_public  # noqa: E402
 
 
 def fixture_key(label: str) -> Ed25519PrivateKey:
@@ -42,22 +43,23 @@ STRANGER = fixture_key("a stranger")
 
 
 def signed(cert: UnverifiedCertificate, key: Ed25519PrivateKey = SIGNER) -> bytes:
-    pub = key.public_key().public_bytes(serialization.Encoding.Raw, serialization.PublicFormat.Raw)
-    cert = dataclasses.replace(cert, signer=pub, signature=None)
+    cert = dataclasses.replace(cert, signer=raw_public(key), signature=None)
     return encode(dataclasses.replace(cert, signature=key.sign(cert.signed_bytes())))
 
 
-def run(number: str, depth: int, base: int = 3) -> UnverifiedCertificate:
+def run(number: str, depth: int, base: int = 3, key: Ed25519PrivateKey | None = SIGNER) -> UnverifiedCertificate:
+    """An honest run; the proof is bound to ``key`` (None: unsigned). The result is returned
+    without its signature; :func:`signed` adds it."""
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp) / "c.cpc"
-        Run(RunConfig(parse_number(number), base=base, depth=depth), out).run()
-        return decode_unverified(out.read_bytes())
+        Run(RunConfig(parse_number(number), base=base, depth=depth), out, key=key).run()
+        return decode_unverified(out.read_bytes()).unsigned()
 
 
 def build() -> dict[str, tuple[bytes, dict[str, Any]]]:
     """name -> (bytes, expectation). Policies: 'default' (any valid signature, unsigned refused),
     'trusted' (only fixture-signer.pub), 'accept-unsigned'."""
-    m127, m521, m11 = run("2^127-1", 4), run("2^521-1", 5), run("2^11-1", 2)
+    m127, m521, m11 = run("2^127-1", 4), run("2^521-1", 5, key=None), run("2^11-1", 2)
     m89b5 = run("2^89-1", 3, base=5)
     ok = {"expect": "verified"}
     files: dict[str, tuple[bytes, dict[str, Any]]] = {
@@ -72,8 +74,8 @@ def build() -> dict[str, tuple[bytes, dict[str, Any]]]:
         files[f"invalid/{name}"] = (data, {"expect": "rejected", "policy": policy, "reason": reason})
 
     num = Mersenne(127)
-    neg, _ = forge(num, 3, 4, num.N - 1)
-    two, _ = forge(num, 3, 4, mpz(2))
+    neg, _ = forge(num, 3, 4, num.N - 1, raw_public(SIGNER))
+    two, _ = forge(num, 3, 4, mpz(2), raw_public(SIGNER))
     bad("m127-negated-final.cpc", signed(neg), "proof does not verify")
     bad("m127-final-times-two.cpc", signed(two), "proof does not verify")
     good = signed(m127)
@@ -88,6 +90,9 @@ def build() -> dict[str, tuple[bytes, dict[str, Any]]]:
     bad("m127-unknown-version.cpc", MAGIC + b"\x07" + good[len(HEADER):], "version")
     bad("m127-truncated.cpc", good[: len(good) // 2], "malformed")
     bad("m127-untrusted-signer.cpc", signed(m127, STRANGER), "not a trusted key", "trusted")
+    # re-signing someone else's certificate: the signature is valid, the proof is bound to the
+    # original signer, so the mathematics rejects it even when the new signer is trusted
+    bad("m127-resigned-by-stranger.cpc", signed(m127, STRANGER), "proof does not verify")
     bad("m521-unsigned-under-default.cpc", encode(m521), "unsigned")
     other = signed(m11)
     cert = decode_unverified(good)

@@ -139,6 +139,8 @@ def decode_unverified(data: bytes, *, max_bytes: int = MAX_CERTIFICATE_BYTES) ->
         raise Rejected(f"malformed certificate body ({type(exc).__name__})") from None
     if not isinstance(obj, dict):
         raise Rejected("certificate body is not a map")
+    if not all(type(k) is str for k in obj):
+        raise Rejected("certificate map keys must be strings")
     allowed = set(_FIELDS) | set(_SIGNATURE_FIELDS)
     unknown = sorted(set(obj) - allowed)
     if unknown:

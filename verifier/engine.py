@@ -25,8 +25,8 @@ import msgpack
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from gmpy2 import mpz
 
-from .codec import MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate, encode
-from .errors import RunFailed, UsageError
+from .codec import MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate, decode_unverified, encode
+from .errors import Rejected, RunFailed, UsageError
 from .gerbicz import (
     DEFAULT_MAX_CONSECUTIVE_FAILURES,
     CaptureGrid,
@@ -39,6 +39,7 @@ from .gerbicz import (
 from .numbers import Mersenne, fermat_verdict, validate_base
 from .proof import Statement, prove
 from .signing import raw_public, sign
+from .verify import VerificationPolicy, verify
 
 STATE_MAGIC = b"CHAINSTA"
 STATE_VERSION = 1
@@ -182,6 +183,7 @@ class Run:
         self.progress, self.max_failures = progress, max_failures
         self.warnings: list[str] = []
         self._warn_cb = warn
+        self._state_damaged = False  # the newest state file failed to load; do not rotate it
         self.spool_path = out.with_name(out.name + ".spool")
         self.state_path = out.with_name(out.name + ".state")
         self.prev_path = out.with_name(out.name + ".state.prev")
@@ -215,14 +217,20 @@ class Run:
         if hashlib.sha256(data[:-DIGEST]).digest() != data[-DIGEST:]:
             raise ValueError("checksum mismatch")
         obj = msgpack.unpackb(data[len(header):-DIGEST], raw=False)
-        if not isinstance(obj, dict):
+        expected = {**self.config.identity(), "step": 0, "x": b"", "d": b"", "committed": 0}
+        if not isinstance(obj, dict) or set(obj) != set(expected):
+            raise ValueError("malformed")
+        if any(type(obj[k]) is not type(v) for k, v in expected.items() if k not in self.config.identity()):
             raise ValueError("malformed")
         return obj
 
     def _write_state(self, state: ChainState, committed: int) -> None:
         self.spool.sync()
         data = self._encode_state(state, committed)
-        if self.state_path.exists():
+        if self._state_damaged:  # keep the good older generation; drop the damaged newest
+            self.state_path.unlink(missing_ok=True)
+            self._state_damaged = False
+        elif self.state_path.exists():
             os.replace(self.state_path, self.prev_path)
         atomic_write(self.state_path, data)
         self._last_save = self.clock()
@@ -235,6 +243,7 @@ class Run:
                 obj = self._decode_state(path.read_bytes())
             except (ValueError, msgpack.UnpackException, OSError) as exc:
                 self._warn(f"checkpoint {path} is unusable ({exc}); trying the older one")
+                self._state_damaged = path == self.state_path
                 continue
             ident = {k: obj.get(k) for k in self.config.identity()}
             if ident != self.config.identity():
@@ -303,7 +312,8 @@ class Run:
             else:
                 final = state.x
             digests = tuple(self.spool.read_record(j)[1] for j in range(1, grid.count + 1))
-            st = Statement(num, cfg.base, cfg.squarings, cfg.depth, final, digests)
+            signer = raw_public(self.key) if self.key is not None else b""
+            st = Statement(num, cfg.base, cfg.squarings, cfg.depth, final, digests, signer)
             mus = prove(st, self.spool.read)
         finally:
             self.spool.close()
@@ -316,6 +326,13 @@ class Run:
             cert = replace(cert, signer=raw_public(self.key))
             cert = replace(cert, signature=sign(self.key, cert.signed_bytes()))
         data = encode(cert)
+        try:  # the proof phase has no Gerbicz check: check the result before the spool goes
+            verify(decode_unverified(data), VerificationPolicy(unsafe_accept_unsigned=True))
+        except Rejected as exc:
+            raise RunFailed(
+                f"self-check of the new certificate failed ({exc.reason}); run state kept, run the "
+                "same command again to rebuild the proof"
+            ) from None
         atomic_write(self.out, data)
         for path in (self.spool_path, self.state_path, self.prev_path):
             path.unlink(missing_ok=True)

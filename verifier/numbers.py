@@ -163,13 +163,16 @@ def parse_number(text: str) -> Mersenne:
 def validate_base(number: Mersenne, base: int) -> None:
     """Check a Fermat base for this number; raise UsageError if it is unusable.
 
-    Bases must be 3 <= a < min(N - 1, 2^32), not a power of two (powers of two lie in the
-    known subgroup <2>, where every Mersenne number passes), and coprime to N.
+    Bases must be 3 <= a < min(N - 1, 2^32), coprime to N, and not +-2^k mod N: those lie in
+    the known subgroup <-1, 2> of order 2p, where every Mersenne number passes. (For p = 3 that
+    subgroup is all of (Z/7Z)*, so no base avoids it; there the rule is void and 7 is prime.)
     """
-    if not 3 <= base < min(int(number.N) - 1, 1 << 32):
+    N = int(number.N)
+    if not 3 <= base < min(N - 1, 1 << 32):
         raise UsageError(f"base {base} out of range: need 3 <= base < min(N-1, 2^32)")
-    if base & (base - 1) == 0:
-        raise UsageError(f"base {base} is a power of two: every 2^p-1 passes for it")
+    neg = N - base
+    if 2 * number.p < N - 1 and (base & (base - 1) == 0 or neg & (neg - 1) == 0):
+        raise UsageError(f"base {base} is +-2^k mod N: every 2^p-1 passes for it")
     if gmpy2.gcd(base, number.N) != 1:
         raise UsageError(f"base {base} shares a factor with {number.text}")
 

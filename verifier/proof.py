@@ -49,6 +49,7 @@ class Statement:
     depth: int
     final: mpz
     checkpoint_digests: tuple[bytes, ...]
+    signer: bytes = b""  # the signer's public key, or empty: binds the proof to the signer
 
     @property
     def head(self) -> int:
@@ -72,6 +73,7 @@ class Statement:
             _field(h, v.to_bytes(8, "big"))
         _field(h, num.to_bytes(self.final))
         _field(h, hashlib.sha256(b"".join(self.checkpoint_digests)).digest())
+        _field(h, self.signer)
         return h.digest()
 
 

@@ -35,13 +35,17 @@ class VerificationPolicy:
     ``trusted_signers``: raw Ed25519 public keys; None accepts any valid signature. An empty set is
     refused (it would silently trust nobody or, worse, be read as "no restriction").
     ``unsafe_accept_unsigned``: accept certificates without a signature; off by default and named
-    so that nobody switches it on by accident.
+    so that nobody switches it on by accident. ``min_depth``, ``max_certificate_bytes`` and
+    ``max_verifier_squarings`` bound what a certificate may ask of the verifier.
     """
 
     trusted_signers: frozenset[bytes] | None = None
     unsafe_accept_unsigned: bool = False
     min_depth: int = 1
     max_certificate_bytes: int = MAX_CERTIFICATE_BYTES
+    #: Bound on the verifier's work (head + final segment), so a shallow proof cannot make the
+    #: verifier redo most of a run. 2^25 allows depth 3 for p near 1.4e8.
+    max_verifier_squarings: int = 1 << 25
 
     def __post_init__(self) -> None:
         if self.trusted_signers is not None and not self.trusted_signers:
@@ -128,7 +132,13 @@ def statement_of(
     # mu_1 is itself a captured residue (the midpoint), so its hash must be in the list.
     if cert.checkpoints[(1 << (d - 1)) - 1] != hashlib.sha256(cert.mu[0]).digest():
         raise Rejected("midpoint checkpoint hash does not match the first proof value")
-    return Statement(num, cert.base, cert.squarings, d, final, cert.checkpoints), mus
+    st = Statement(num, cert.base, cert.squarings, d, final, cert.checkpoints, cert.signer or b"")
+    if st.head + st.segment > policy.max_verifier_squarings:
+        raise Rejected(
+            f"checking needs over {st.head + st.segment} squarings, above the policy limit "
+            f"{policy.max_verifier_squarings} (a deeper proof is needed)"
+        )
+    return st, mus
 
 
 def verify(
@@ -137,7 +147,11 @@ def verify(
     *,
     clock: Callable[[], float] = time.perf_counter,
 ) -> VerifiedResult:
-    """Verify a certificate under ``policy``. Raises Rejected with a reason; no partial results."""
+    """Verify a certificate under ``policy``. Raises Rejected with a reason; no partial results.
+
+    Raises RunFailed (not Rejected) if the verifier's own final segment keeps failing its Gerbicz
+    check: then this machine is faulty and says nothing about the certificate.
+    """
     t0 = clock()
     signer = _check_signature(cert, policy)
     st, mus = statement_of(cert, policy)
