@@ -25,6 +25,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from adversary import forge  # noqa: E402
+from malformed import corpus  # noqa: E402
 
 from verifier import Run, RunConfig, decode_unverified, encode, parse_number  # noqa: E402
 from verifier.codec import HEADER, MAGIC, UnverifiedCertificate  # noqa: E402
@@ -98,7 +99,16 @@ def build() -> dict[str, tuple[bytes, dict[str, Any]]]:
     cert = decode_unverified(good)
     wrong_sig = dataclasses.replace(cert, signature=decode_unverified(other).signature)
     bad("m127-signature-of-other-content.cpc", encode(wrong_sig), "signature does not verify")
+    small_signed, small_unsigned = signed(run("2^31-1", 2)), encode(run("2^31-1", 2, key=None))
+    stranger = signed(run("2^61-1", 2, key=STRANGER), STRANGER)
+    for name, data, policy, reason in corpus(small_signed, small_unsigned, stranger, encode(m11_unsigned()),
+                                             signed):
+        files[f"malformed/{name}.cpc"] = (data, {"expect": "rejected", "policy": policy, "reason": reason})
     return files
+
+
+def m11_unsigned() -> UnverifiedCertificate:
+    return run("2^11-1", 2, key=None)
 
 
 def write(outdir: Path) -> None:

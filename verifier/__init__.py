@@ -9,7 +9,7 @@ Library entry points:
 
 from .codec import UnverifiedCertificate, decode_unverified, encode
 from .engine import Run, RunConfig, RunReport
-from .errors import ChainproofError, Rejected, RunFailed, UsageError
+from .errors import ChainproofError, Rejected, RunFailed, StorageError, UsageError
 from .numbers import Mersenne, parse_number
 from .verify import PRP_CAUTION, VerificationPolicy, VerifiedResult, verify
 
@@ -24,6 +24,7 @@ __all__ = [
     "RunConfig",
     "RunFailed",
     "RunReport",
+    "StorageError",
     "UnverifiedCertificate",
     "UsageError",
     "VerificationPolicy",

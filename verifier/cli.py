@@ -18,7 +18,7 @@ from typing import Any
 from . import __version__
 from .codec import UnverifiedCertificate, decode_unverified
 from .engine import Run, RunConfig
-from .errors import Rejected, RunFailed, UsageError
+from .errors import Rejected, RunFailed, StorageError, UsageError
 from .numbers import fermat_verdict, parse_number
 from .signing import (
     fingerprint,
@@ -294,7 +294,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         code: int = args.func(args)
         return code
-    except UsageError as exc:
+    except (UsageError, StorageError) as exc:
         _error(args, str(exc))
         return EXIT_USAGE
     except RunFailed as exc:

@@ -26,7 +26,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from gmpy2 import mpz
 
 from .codec import MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate, decode_unverified, encode
-from .errors import Rejected, RunFailed, UsageError
+from .errors import Rejected, RunFailed, StorageError, UsageError
 from .gerbicz import (
     DEFAULT_MAX_CONSECUTIVE_FAILURES,
     CaptureGrid,
@@ -46,14 +46,23 @@ STATE_VERSION = 1
 DIGEST = 32
 
 
-def atomic_write(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` so that a crash leaves either the old or the new file."""
+def write_temp(path: Path, data: bytes) -> Path:
+    """Write ``data`` durably to ``path.tmp`` and return that path; on failure remove it."""
     tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return tmp
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that a crash or a full disk leaves the old or the new file."""
+    os.replace(write_temp(path, data), path)
     _fsync_dir(path.parent)
 
 
@@ -226,13 +235,14 @@ class Run:
 
     def _write_state(self, state: ChainState, committed: int) -> None:
         self.spool.sync()
-        data = self._encode_state(state, committed)
+        tmp = write_temp(self.state_path, self._encode_state(state, committed))
         if self._state_damaged:  # keep the good older generation; drop the damaged newest
             self.state_path.unlink(missing_ok=True)
             self._state_damaged = False
         elif self.state_path.exists():
             os.replace(self.state_path, self.prev_path)
-        atomic_write(self.state_path, data)
+        os.replace(tmp, self.state_path)
+        _fsync_dir(self.state_path.parent)
         self._last_save = self.clock()
 
     def _load_state(self) -> dict[str, Any] | None:
@@ -261,8 +271,19 @@ class Run:
         """Run (or resume) to the end and write the certificate.
 
         Raises UsageError if the output exists without run state, RunFailed if the hardware keeps
-        failing the Gerbicz check or the spool is damaged.
+        failing the Gerbicz check or the spool is damaged, StorageError if a file cannot be
+        written (the state on disk stays consistent; the same call resumes).
         """
+        try:
+            return self._run()
+        except OSError as exc:
+            where = f" {exc.filename}" if exc.filename else ""
+            raise StorageError(
+                f"file error{where}: {exc.strerror or exc}; the last checkpoint is intact, run the "
+                "same command again once this is fixed"
+            ) from None
+
+    def _run(self) -> RunReport:
         cfg, num = self.config, self.config.number
         t0 = self.clock()
         saved = self._load_state()

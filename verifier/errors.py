@@ -23,5 +23,10 @@ class UsageError(ChainproofError):
     """Bad input from the user: a malformed number, an out-of-range option, an unreadable file."""
 
 
+class StorageError(ChainproofError):
+    """Run state or output could not be written (disk full, permissions). What was on disk before
+    is intact; the same command resumes once the cause is fixed."""
+
+
 class RunFailed(ChainproofError):
     """A run could not finish correctly, e.g. the Gerbicz check kept failing (broken hardware)."""
