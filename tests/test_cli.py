@@ -133,3 +133,16 @@ def test_python_dash_m_and_quiet_without_tty(tmp_path: Path) -> None:
     )
     assert proc.stderr == ""  # no progress bar when stderr is not a terminal
     assert "probable-prime" in proc.stdout
+
+
+def test_max_squarings_option(capsys: pytest.CaptureFixture[str]) -> None:
+    fixture = Path(__file__).resolve().parent.parent / "fixtures" / "valid" / "m127-signed.cpc"
+    code, obj = run_cli(capsys, "check", str(fixture), "--max-squarings", "10")
+    assert code == 1 and "policy limit" in obj["reason"]
+
+
+def test_broken_pipe_is_quiet(tmp_path: Path) -> None:
+    fixture = Path(__file__).resolve().parent.parent / "fixtures" / "valid" / "m127-signed.cpc"
+    proc = subprocess.run(f"{sys.executable} -m verifier check {fixture} | head -c 1", shell=True,
+                          capture_output=True, text=True)
+    assert "Traceback" not in proc.stderr

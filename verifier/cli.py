@@ -152,6 +152,7 @@ def _policy(args: argparse.Namespace) -> VerificationPolicy:
         trusted_signers=keys,
         unsafe_accept_unsigned=args.accept_unsigned,
         min_depth=args.min_depth,
+        max_verifier_squarings=args.max_squarings,
     )
 
 
@@ -161,6 +162,8 @@ def cmd_check(args: argparse.Namespace) -> int:
     try:
         data = _read_certificate(path, policy.max_certificate_bytes)
         result = verify(decode_unverified(data, max_bytes=policy.max_certificate_bytes), policy)
+    except RunFailed as exc:  # this machine failed its own check: no verdict about the certificate
+        raise StorageError(f"could not check {path}: {exc}") from None
     except Rejected as exc:
         _emit(args, {"verified": False, "certificate": str(path), "reason": exc.reason},
               [f"REJECTED  {path}: {exc.reason}"])
@@ -280,6 +283,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--accept-unsigned", action="store_true",
                    help="UNSAFE: also accept certificates without a signature")
     p.add_argument("--min-depth", type=int, default=1, help="reject proofs shallower than this")
+    p.add_argument("--max-squarings", type=int, default=VerificationPolicy.max_verifier_squarings,
+                   metavar="N", help="reject certificates that would make this verifier do more than "
+                   "N squarings for the head and final segment (default 2^25)")
     p.set_defaults(func=cmd_check)
 
     p = add("inspect", "show what a certificate claims, without verifying it")
@@ -303,6 +309,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         _error(args, "interrupted; run the same command again to resume")
         return 130
+    except BrokenPipeError:  # e.g. `chainproof check X | head`: the reader left, not an error of ours
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
 
 
 def _error(args: argparse.Namespace, message: str) -> None:

@@ -135,7 +135,7 @@ def statement_of(
     st = Statement(num, cert.base, cert.squarings, d, final, cert.checkpoints, cert.signer or b"")
     if st.head + st.segment > policy.max_verifier_squarings:
         raise Rejected(
-            f"checking needs over {st.head + st.segment} squarings, above the policy limit "
+            f"checking needs {st.head + st.segment} squarings, above the policy limit "
             f"{policy.max_verifier_squarings} (a deeper proof is needed)"
         )
     return st, mus
