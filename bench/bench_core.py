@@ -22,7 +22,7 @@ residue, wrong verdict, rejected certificate), 2 for bad arguments.
 
 The full runs execute in child processes (this file re-invoked with a private ``--child`` flag)
 so that their peak RSS is not mixed with the parent's. To split a full run into its chain phase
-and the rest, the child wraps ``verifier.engine.GerbiczChain.run`` and ``verifier.engine.prove``
+and the rest, the child wraps ``verifier.engine.GerbiczChain.run`` and ``verifier.certify.prove``
 with timers before starting the run; library code is not changed.
 """
 
@@ -98,13 +98,13 @@ def child_main(argv: list[str]) -> int:
 
 
 def _child_full_run(p: int, depth: int, out: Path) -> dict[str, Any]:
-    from verifier import engine
+    from verifier import certify, engine
     from verifier.engine import Run, RunConfig
     from verifier.numbers import Mersenne
 
     spent = {"chain": 0.0, "prove": 0.0}
     base_chain = engine.GerbiczChain
-    base_prove = engine.prove
+    base_prove = certify.prove
 
     class TimedChain(base_chain):  # type: ignore[misc, valid-type]
         def run(self, state=None):  # type: ignore[no-untyped-def]
@@ -122,7 +122,7 @@ def _child_full_run(p: int, depth: int, out: Path) -> dict[str, Any]:
             spent["prove"] += time.perf_counter() - t
 
     engine.GerbiczChain = TimedChain  # type: ignore[misc]
-    engine.prove = timed_prove
+    certify.prove = timed_prove
 
     config = RunConfig(Mersenne.from_exponent(p), depth=depth)
     t0 = time.perf_counter()

@@ -219,15 +219,15 @@ def test_state_with_valid_checksum_but_wrong_fields_is_unusable(tmp_path: Path) 
 
 def test_self_check_failure_keeps_the_run_state(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     """A fault in proof building (outside the Gerbicz check) is caught before the spool goes."""
-    import verifier.engine as engine
+    import verifier.certify as certify
 
     cfg = config()
     out = tmp_path / "p.cpc"
-    real_prove = engine.prove
-    monkeypatch.setattr(engine, "prove", lambda st, cap: [m ^ 4 for m in real_prove(st, cap)])
+    real_prove = certify.prove
+    monkeypatch.setattr(certify, "prove", lambda st, cap: [m ^ 4 for m in real_prove(st, cap)])
     with pytest.raises(RunFailed, match="self-check"):
         Run(cfg, out, key=det_key()).run()
     assert not out.exists() and out.with_name(out.name + ".state").exists()
-    monkeypatch.setattr(engine, "prove", real_prove)
+    monkeypatch.setattr(certify, "prove", real_prove)
     Run(cfg, out, key=det_key()).run()  # rerun rebuilds the proof from the kept spool
     assert out.read_bytes() == clean_run(tmp_path, cfg)

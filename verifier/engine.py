@@ -17,7 +17,7 @@ import hashlib
 import os
 import time
 from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, BinaryIO
 
@@ -25,8 +25,9 @@ import msgpack
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from gmpy2 import mpz
 
-from .codec import MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate, decode_unverified, encode
-from .errors import Rejected, RunFailed, StorageError, UsageError
+from .certify import SelfCheckFailed, build_certificate
+from .codec import MAX_DEPTH
+from .errors import RunFailed, StorageError, UsageError
 from .gerbicz import (
     DEFAULT_MAX_CONSECUTIVE_FAILURES,
     CaptureGrid,
@@ -37,14 +38,6 @@ from .gerbicz import (
     default_block,
 )
 from .numbers import Mersenne, fermat_verdict, validate_base
-from .proof import Statement, prove
-from .signing import raw_public, sign
-from .verify import VerificationPolicy, verify
-
-#: The worker checks its own certificate with no limits on size or work (they are the verifier's
-#: business) and without requiring a signature (it has just made it).
-SELF_CHECK = VerificationPolicy(unsafe_accept_unsigned=True, max_verifier_squarings=1 << 62,
-                                max_certificate_bytes=1 << 62)
 
 STATE_MAGIC = b"CHAINSTA"
 STATE_VERSION = 1
@@ -338,28 +331,17 @@ class Run:
             else:
                 final = state.x
             digests = tuple(self.spool.read_record(j)[1] for j in range(1, grid.count + 1))
-            signer = raw_public(self.key) if self.key is not None else b""
-            st = Statement(num, cfg.base, cfg.squarings, cfg.depth, final, digests, signer)
-            mus = prove(st, self.spool.read)
+            try:
+                data = build_certificate(num, cfg.base, cfg.squarings, cfg.depth, final, digests,
+                                         self.spool.read, self.key)
+            except SelfCheckFailed as exc:
+                raise RunFailed(
+                    f"self-check of the new certificate failed ({exc}); the run state is kept and the "
+                    "same command rebuilds the proof from it. If that fails again, remove the .state, "
+                    ".state.prev and .spool files to start over"
+                ) from None
         finally:
             self.spool.close()
-        cert = UnverifiedCertificate(
-            number=num.text, test=TEST_FERMAT, base=cfg.base, squarings=cfg.squarings,
-            depth=cfg.depth, final=num.to_bytes(final),
-            mu=tuple(num.to_bytes(m) for m in mus), checkpoints=digests,
-        )
-        if self.key is not None:
-            cert = replace(cert, signer=raw_public(self.key))
-            cert = replace(cert, signature=sign(self.key, cert.signed_bytes()))
-        data = encode(cert)
-        try:  # the proof phase has no Gerbicz check: check the result before the spool goes
-            verify(decode_unverified(data, max_bytes=len(data)), SELF_CHECK)
-        except Rejected as exc:
-            raise RunFailed(
-                f"self-check of the new certificate failed ({exc.reason}); the run state is kept and "
-                "the same command rebuilds the proof from it. If that fails again, remove the .state, "
-                ".state.prev and .spool files to start over"
-            ) from None
         atomic_write(self.out, data)
         for path in (self.spool_path, self.state_path, self.prev_path):
             path.unlink(missing_ok=True)
