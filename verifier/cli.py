@@ -146,6 +146,35 @@ def cmd_prove(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_assemble(args: argparse.Namespace) -> int:
+    from .recorder import SpoolError, assemble
+
+    key = load_private_key(Path(args.key), _passphrase(args)) if args.key else None
+    out = Path(args.output)
+    if out.exists():
+        raise UsageError(f"{out} already exists; choose another output name")
+    try:
+        data = assemble(Path(args.spool), out, key)
+    except SpoolError as exc:
+        _emit(args, {"assembled": False, "spool": args.spool, "reason": str(exc)},
+              [f"NOT ASSEMBLED  {exc}"])
+        return EXIT_REJECTED
+    cert = decode_unverified(data)
+    result, residue64 = fermat_verdict(parse_number(cert.number), cert.base,
+                                       parse_number(cert.number).from_bytes(cert.final))
+    signer = fingerprint(cert.signer) if cert.signer else None
+    obj = {"assembled": True, "certificate": str(out), "certificate_bytes": len(data),
+           "number": cert.number, "depth": cert.depth, "result": result, "residue64": residue64,
+           "signer": signer, "caution": PRP_CAUTION}
+    _emit(args, obj, [
+        f"{cert.number}: {result} (base {cert.base}), residue64 {residue64}",
+        f"  certificate  {out} ({len(data):,} bytes, depth {cert.depth}, "
+        f"{'signed ' + signer if signer else 'UNSIGNED'})",
+        PRP_CAUTION,
+    ])
+    return EXIT_OK
+
+
 def _policy(args: argparse.Namespace) -> VerificationPolicy:
     keys = frozenset(load_public_key(Path(k)) for k in args.trusted_key) if args.trusted_key else None
     return VerificationPolicy(
@@ -287,6 +316,14 @@ def build_parser() -> argparse.ArgumentParser:
                    metavar="N", help="reject certificates that would make this verifier do more than "
                    "N squarings for the head and final segment (default 2^25)")
     p.set_defaults(func=cmd_check)
+
+    p = add("assemble", "build a certificate from a spool folder written by another program "
+            "(exit 0 written, 1 spool rejected, 2 usage/IO error)")
+    p.add_argument("spool", help="the spool folder (manifest.json + step-<k>.res files)")
+    p.add_argument("-o", "--output", required=True, help="certificate file to write")
+    p.add_argument("--key", help="sign with this Ed25519 private key")
+    p.add_argument("--passphrase-env", metavar="VAR", help="the key's passphrase is in $VAR")
+    p.set_defaults(func=cmd_assemble)
 
     p = add("inspect", "show what a certificate claims, without verifying it")
     p.add_argument("certificate")
