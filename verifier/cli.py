@@ -104,11 +104,23 @@ def cmd_keygen(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _depth(text: str) -> int | str:
+    if text == "auto":
+        return text
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError("depth must be an integer or 'auto'") from None
+
+
 def cmd_prove(args: argparse.Namespace) -> int:
+    from .planner import plan
+
     number = parse_number(args.number)
     key = load_private_key(Path(args.key), _passphrase(args)) if args.key else None
     out = Path(args.output) if args.output else Path(f"m{number.p}{EXTENSION}")
-    config = RunConfig(number, base=args.base, depth=args.depth)
+    depth = plan(number).recommended.depth if args.depth == "auto" else args.depth
+    config = RunConfig(number, base=args.base, depth=depth)
     show_bar = not args.json and sys.stderr.isatty()
 
     def warn(message: str) -> None:
@@ -172,6 +184,57 @@ def cmd_assemble(args: argparse.Namespace) -> int:
         f"{'signed ' + signer if signer else 'UNSIGNED'})",
         PRP_CAUTION,
     ])
+    return EXIT_OK
+
+
+def _size(n: float) -> str:
+    for unit in ("B", "KB", "MB", "GB", "TB"):
+        if n < 1000 or unit == "TB":
+            return f"{n:,.0f} {unit}" if unit == "B" else f"{n:,.1f} {unit}"
+        n /= 1000
+    raise AssertionError
+
+
+def cmd_plan(args: argparse.Namespace) -> int:
+    from .planner import parse_size, plan, plot
+
+    number = parse_number(args.number)
+    try:
+        max_disk = parse_size(args.max_disk) if args.max_disk else None
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
+    p = plan(number, max_disk=max_disk)
+    if args.plot:
+        try:
+            plot(p, args.plot)
+        except ImportError:
+            raise UsageError("--plot needs matplotlib: pip install 'chainproof[plot]'") from None
+    rec = p.recommended
+    lines = [
+        f"{number.text}: a run is {number.p:,} squarings, about {p.run_seconds:,.1f} s on this machine "
+        f"({p.squaring_seconds * 1e6:,.1f} us per squaring)",
+        f"{'depth':>5}  {'spool disk':>11}  {'certificate':>11}  {'prover extra':>24}  "
+        f"{'verifier squarings':>18}  {'verify (model)':>14}",
+    ]
+    for o in p.options:
+        mark = "*" if o.recommended else (" " if o.fits_disk else "x")
+        lines.append(
+            f"{o.depth:>4}{mark}  {_size(o.spool_bytes):>11}  {_size(o.certificate_bytes):>11}  "
+            f"{o.prover_extra_seconds:>11,.2f} s ({o.prover_extra_fraction:>8.2%})  "
+            f"{o.verifier_squarings:>18,.0f}  {o.verify_seconds:>12,.3f} s"
+        )
+    budget = f"spool within {_size(max_disk)} and " if max_disk is not None else ""
+    lines.append(f"* recommended depth {rec.depth}: the smallest verify cost with {budget}proof building "
+                 f"at most {p.max_prover_extra:.0%} of the run" +
+                 ("" if rec.within_prover_budget and rec.fits_disk else
+                  " (no depth meets every budget; this one costs the least in all)"))
+    if max_disk is not None:
+        lines.append("x over the disk budget")
+    lines.append("The worker also verifies its own certificate before deleting the spool (costs about "
+                 "the verify time).")
+    if args.plot:
+        lines.append(f"plot written to {args.plot}")
+    _emit(args, p.as_dict(), lines)
     return EXIT_OK
 
 
@@ -299,8 +362,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--key", help="sign with this Ed25519 private key")
     p.add_argument("--passphrase-env", metavar="VAR", help="the key's passphrase is in $VAR")
     p.add_argument("--base", type=int, default=3, help="Fermat base (default 3)")
-    p.add_argument("--depth", type=int, default=8,
-                   help="proof depth: the verifier does about 1/2^depth of the work (default 8)")
+    p.add_argument("--depth", type=_depth, default=8,
+                   help="proof depth: the verifier does about 1/2^depth of the work (default 8); "
+                   "'auto' takes the depth 'chainproof plan' recommends")
     p.add_argument("--checkpoint-every", type=float, default=60.0, metavar="SECONDS",
                    help="write run state at most this often (default 60)")
     p.set_defaults(func=cmd_prove)
@@ -324,6 +388,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--key", help="sign with this Ed25519 private key")
     p.add_argument("--passphrase-env", metavar="VAR", help="the key's passphrase is in $VAR")
     p.set_defaults(func=cmd_assemble)
+
+    p = add("plan", "compare proof depths: disk, certificate size, prover and verifier cost")
+    p.add_argument("number", help="the number, written 2^p-1 (p prime)")
+    p.add_argument("--max-disk", metavar="SIZE", help="spool disk budget, e.g. 20GB or 500MiB")
+    p.add_argument("--plot", metavar="FILE.png", help="also draw verify cost and disk against depth")
+    p.set_defaults(func=cmd_plan)
 
     p = add("inspect", "show what a certificate claims, without verifying it")
     p.add_argument("certificate")
