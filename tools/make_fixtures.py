@@ -29,7 +29,7 @@ from malformed import corpus  # noqa: E402
 
 from verifier import Run, RunConfig, decode_unverified, encode, parse_number  # noqa: E402
 from verifier.codec import HEADER, MAGIC, UnverifiedCertificate  # noqa: E402
-from verifier.numbers import Mersenne  # noqa: E402
+from verifier.numbers import Mersenne, parse_modulus  # noqa: E402
 from verifier.signing import raw_public  # noqa: E402
 
 
@@ -48,12 +48,14 @@ def signed(cert: UnverifiedCertificate, key: Ed25519PrivateKey = SIGNER) -> byte
     return encode(dataclasses.replace(cert, signature=key.sign(cert.signed_bytes())))
 
 
-def run(number: str, depth: int, base: int = 3, key: Ed25519PrivateKey | None = SIGNER) -> UnverifiedCertificate:
+def run(number: str, depth: int, base: int = 3, key: Ed25519PrivateKey | None = SIGNER,
+        **config: object) -> UnverifiedCertificate:
     """An honest run; the proof is bound to ``key`` (None: unsigned). The result is returned
     without its signature; :func:`signed` adds it."""
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp) / "c.cpc"
-        Run(RunConfig(parse_number(number), base=base, depth=depth), out, key=key).run()
+        num = parse_modulus(number) if number.isdigit() else parse_number(number)
+        Run(RunConfig(num, base=base, depth=depth, **config), out, key=key).run()  # type: ignore[arg-type]
         return decode_unverified(out.read_bytes()).unsigned()
 
 
@@ -69,6 +71,16 @@ def build() -> dict[str, tuple[bytes, dict[str, Any]]]:
                                                    "result": "probable-prime"}),
         "valid/m11-composite.cpc": (signed(m11), {**ok, "policy": "trusted", "result": "composite"}),
         "valid/m89-base5.cpc": (signed(m89b5), {**ok, "policy": "default", "result": "probable-prime"}),
+        "valid/m127-lucas-lehmer.cpc": (signed(run("2^127-1", 4, base=4, test="lucas-lehmer")),
+                                        {**ok, "policy": "trusted", "result": "prime"}),
+        "valid/f5-pepin.cpc": (signed(run("2^(2^5)+1", 4)), {**ok, "policy": "trusted", "result": "composite"}),
+        "valid/3x2e66p1-proth.cpc": (signed(run("3*2^66+1", 4, base=5, test="proth")),
+                                     {**ok, "policy": "trusted", "result": "prime"}),
+        "valid/m29-cofactor.cpc": (signed(run("2^29-1", 2, known_factors=(233, 1103))),
+                                   {**ok, "policy": "trusted", "result": "probable-prime"}),
+        "valid/delay-192bit.cpc": (signed(run(str((2**89 - 1) * (2**107 - 1)), 4, test="delay",
+                                              delay_squarings=1000)),
+                                   {**ok, "policy": "trusted", "result": "computed"}),
     }
 
     def bad(name: str, data: bytes, reason: str, policy: str = "default") -> None:

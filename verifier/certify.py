@@ -8,13 +8,14 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import replace
+from typing import Any
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
-from gmpy2 import mpz
 
-from .codec import TEST_FERMAT, UnverifiedCertificate, decode_unverified, encode
+from .codec import UnverifiedCertificate, decode_unverified, encode
 from .errors import Rejected
-from .numbers import Mersenne
+from .methods import Method, transcript_context
+from .numbers import Modulus
 from .proof import Statement, prove
 from .signing import raw_public, sign
 from .verify import VerificationPolicy, verify
@@ -31,27 +32,33 @@ class SelfCheckFailed(Exception):
 
 
 def build_certificate(
-    number: Mersenne,
+    method: Method,
+    number: Modulus,
     base: int,
     squarings: int,
     depth: int,
-    final: mpz,
+    final: Any,
     digests: Sequence[bytes],
-    capture: Callable[[int], mpz],
+    capture: Callable[[int], Any],
     key: Ed25519PrivateKey | None,
+    factors: Sequence[int] = (),
 ) -> bytes:
-    """Prove, encode, sign (if ``key``) and verify a certificate of base^(2^squarings) = final.
+    """Prove, encode, sign (if ``key``) and verify a certificate of x_0^(2^squarings) = final for
+    ``method`` on ``number``.
 
     ``capture(j)`` returns u_j (1 <= j < 2^depth); ``digests`` are the SHA-256 of u_1..u_(2^depth).
     Raises SelfCheckFailed if the result does not verify.
     """
+    group = method.group(number)
+    factor_text = tuple(str(f) for f in factors) if factors else None
     signer = raw_public(key) if key is not None else b""
-    st = Statement(number, base, squarings, depth, final, tuple(digests), signer)
+    st = Statement(group, method.start(number, base), squarings, depth, final, tuple(digests), signer,
+                   transcript_context(number.text, method.name, base, factor_text))
     mus = prove(st, capture)
     cert = UnverifiedCertificate(
-        number=number.text, test=TEST_FERMAT, base=base, squarings=squarings, depth=depth,
-        final=number.to_bytes(final), mu=tuple(number.to_bytes(m) for m in mus),
-        checkpoints=tuple(digests),
+        number=number.text, test=method.name, base=base, squarings=squarings, depth=depth,
+        final=group.to_bytes(final), mu=tuple(group.to_bytes(m) for m in mus),
+        checkpoints=tuple(digests), known_factors=factor_text,
     )
     if key is not None:
         cert = replace(cert, signer=signer)

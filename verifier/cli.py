@@ -19,7 +19,8 @@ from . import __version__
 from .codec import UnverifiedCertificate, decode_unverified
 from .engine import Run, RunConfig
 from .errors import Rejected, RunFailed, StorageError, UsageError
-from .numbers import fermat_verdict, parse_number
+from .methods import METHODS, FermatPRP, Method, Proth, default_method, method
+from .numbers import NUMBER_SYNTAX, Fermat, KTwoN, Mersenne, Modulus, parse_modulus, parse_number
 from .signing import (
     fingerprint,
     generate_keypair,
@@ -116,22 +117,46 @@ def _depth(text: str) -> int | str:
 def cmd_prove(args: argparse.Namespace) -> int:
     from .planner import plan
 
-    number = parse_number(args.number)
+    if args.modulus is not None:
+        if args.number is not None:
+            raise UsageError("give either a number or --modulus, not both")
+        number: Modulus = parse_modulus(args.modulus)
+    elif args.number is None:
+        raise UsageError("no number given")
+    else:
+        number = parse_number(args.number)
+    factors = tuple(_factor(f) for f in args.known_factor or ())
+    test = method(args.test) if args.test else default_method(number, factors)
+    if args.base in (None, "auto"):  # Proth needs Jacobi(a/N) = -1: search for the smallest such a
+        base = Proth.find_base(number) if test.name == "proth" else test.default_base
+    else:
+        try:
+            base = int(args.base)
+        except ValueError:
+            raise UsageError(f"base must be an integer or 'auto', not {args.base!r}") from None
     key = load_private_key(Path(args.key), _passphrase(args)) if args.key else None
-    out = Path(args.output) if args.output else Path(f"m{number.p}{EXTENSION}")
-    depth = plan(number).recommended.depth if args.depth == "auto" else args.depth
-    config = RunConfig(number, base=args.base, depth=depth)
+    out = Path(args.output) if args.output else Path(_default_name(number, test) + EXTENSION)
+    test.check(number, base, factors, args.squarings)
+    depth = (plan(number, test=test, squarings=args.squarings).recommended.depth
+             if args.depth == "auto" else args.depth)
+    config = RunConfig(number, base=base, depth=depth, test=test.name, known_factors=factors,
+                       delay_squarings=args.squarings)
     show_bar = not args.json and sys.stderr.isatty()
 
     def warn(message: str) -> None:
         print(f"chainproof: warning: {message}", file=sys.stderr)
 
-    with _progress_bar(show_bar, f"PRP {number.text}") as bar:
+    with _progress_bar(show_bar, f"{test.name} {_short(number.text)}") as bar:
         report = Run(config, out, key=key, checkpoint_seconds=args.checkpoint_every,
                      progress=bar, warn=warn).run()
+    v = report.verdict
     obj = {
         "number": number.text,
+        "test": test.name,
+        "base": base,
         "result": report.result,
+        "proved": v.proved,
+        "subject": v.subject,
         "residue64": report.residue64,
         "certificate": str(report.certificate),
         "certificate_bytes": report.certificate_bytes,
@@ -142,20 +167,45 @@ def cmd_prove(args: argparse.Namespace) -> int:
         "errors_recovered": report.errors_recovered,
         "resumed_at": report.resumed_at,
         "signer": fingerprint(raw_public(key)) if key else None,
-        "caution": PRP_CAUTION,
+        "caution": v.caution,
     }
+    if factors:
+        obj["known_factors"] = [str(f) for f in factors]
     resumed = "" if report.resumed_at is None else f" (resumed at step {report.resumed_at:,})"
     signed = f"signed {fingerprint(raw_public(key))}" if key else "UNSIGNED"
     _emit(args, obj, [
-        f"{number.text}: {report.result} (base {args.base}), residue64 {report.residue64}",
+        f"{_short(v.subject)}: {report.result} ({test.title}, base {base}), residue64 {report.residue64}",
         f"  run          {report.squarings:,} squarings in {report.seconds:.2f} s{resumed}",
         f"  checks       {report.gerbicz_checks} Gerbicz checks, {report.errors_recovered} errors "
         "recovered",
         f"  certificate  {report.certificate} ({report.certificate_bytes:,} bytes, depth "
         f"{report.depth}, {signed})",
-        PRP_CAUTION,
+        v.caution,
     ])
     return EXIT_OK
+
+
+def _factor(text: str) -> int:
+    try:
+        return int(text, 0)
+    except ValueError:
+        raise UsageError(f"cannot read factor {text!r}") from None
+
+
+def _short(text: str) -> str:
+    return text if len(text) <= 40 else f"{text[:18]}...{text[-12:]}"
+
+
+def _default_name(number: Modulus, test: Method) -> str:
+    if isinstance(number, Mersenne):
+        stem = f"m{number.p}"
+    elif isinstance(number, Fermat):
+        stem = f"f{number.m}"
+    elif isinstance(number, KTwoN):
+        stem = f"{number.k}x2e{number.n}{'p' if number.c > 0 else 'm'}1"
+    else:
+        stem = f"mod{number.bits}bit"
+    return stem if test is default_method(number) else f"{stem}-{test.name}"
 
 
 def cmd_assemble(args: argparse.Namespace) -> int:
@@ -172,8 +222,9 @@ def cmd_assemble(args: argparse.Namespace) -> int:
               [f"NOT ASSEMBLED  {exc}"])
         return EXIT_REJECTED
     cert = decode_unverified(data)
-    result, residue64 = fermat_verdict(parse_number(cert.number), cert.base,
-                                       parse_number(cert.number).from_bytes(cert.final))
+    number = parse_number(cert.number)
+    v = FermatPRP().verdict(number, cert.base, number.from_bytes(cert.final), ())
+    result, residue64 = v.result, v.residue64
     signer = fingerprint(cert.signer) if cert.signer else None
     obj = {"assembled": True, "certificate": str(out), "certificate_bytes": len(data),
            "number": cert.number, "depth": cert.depth, "result": result, "residue64": residue64,
@@ -203,7 +254,7 @@ def cmd_plan(args: argparse.Namespace) -> int:
         max_disk = parse_size(args.max_disk) if args.max_disk else None
     except ValueError as exc:
         raise UsageError(str(exc)) from None
-    p = plan(number, max_disk=max_disk)
+    p = plan(number, max_disk=max_disk, test=method(args.test) if args.test else None)
     if args.plot:
         try:
             plot(p, args.plot)
@@ -211,7 +262,7 @@ def cmd_plan(args: argparse.Namespace) -> int:
             raise UsageError("--plot needs matplotlib: pip install 'chainproof[plot]'") from None
     rec = p.recommended
     lines = [
-        f"{number.text}: a run is {number.p:,} squarings, about {p.run_seconds:,.1f} s on this machine "
+        f"{_short(number.text)}: a run is {p.squarings:,} squarings, about {p.run_seconds:,.1f} s on this machine "
         f"({p.squaring_seconds * 1e6:,.1f} us per squaring)",
         f"{'depth':>5}  {'spool disk':>11}  {'certificate':>11}  {'prover extra':>24}  "
         f"{'verifier squarings':>18}  {'verify (model)':>14}",
@@ -278,8 +329,12 @@ def cmd_check(args: argparse.Namespace) -> int:
         "unsigned": result.signer is None,
         "caution": result.caution,
     }
+    obj.update(proved=result.proved, subject=result.subject)
+    if result.known_factors:
+        obj["known_factors"] = [str(f) for f in result.known_factors]
     _emit(args, obj, [
-        f"VERIFIED  {result.number}: {result.result} (base {result.base})",
+        f"VERIFIED  {_short(result.subject)}: {result.result} ({method(result.test).title}, "
+        f"base {result.base})",
         f"  residue64  {result.residue64}",
         f"  proof      depth {result.depth}; {result.squarings:,} squarings instead of "
         f"{result.claimed_squarings:,} ({speedup:,.0f}x fewer)",
@@ -301,11 +356,16 @@ def _inspect_fields(cert: UnverifiedCertificate) -> dict[str, Any]:
         "checkpoint_hashes": len(cert.checkpoints),
         "signer": fingerprint(cert.signer) if cert.signer else None,
     }
-    try:
+    try:  # what the certificate would mean if it verified; nothing here is checked
         number = parse_number(cert.number)
-        final = number.from_bytes(cert.final)
-        if 0 < final < number.N:
-            obj["claimed_result"], obj["claimed_residue64"] = fermat_verdict(number, cert.base, final)
+        test = method(cert.test)
+        group = test.group(number)
+        final = group.from_bytes(cert.final)
+        factors = tuple(int(f) for f in cert.known_factors or ())
+        if len(cert.final) == group.element_bytes and group.check_element(final) is None:
+            v = test.verdict(number, cert.base, final, factors)
+            obj["claimed_result"], obj["claimed_residue64"] = v.result, v.residue64
+            obj["subject"] = v.subject
     except (UsageError, ZeroDivisionError, ValueError):
         pass
     return obj
@@ -356,12 +416,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--passphrase-env", metavar="VAR", help="encrypt with the passphrase in $VAR")
     p.set_defaults(func=cmd_keygen)
 
-    p = add("prove", "run a Fermat PRP test and write a certificate (resumes if interrupted)")
-    p.add_argument("number", help="the number, written 2^p-1 (p prime)")
-    p.add_argument("-o", "--output", help=f"certificate file (default m<p>{EXTENSION})")
+    p = add("prove", "run a test and write a certificate (resumes if interrupted)")
+    p.add_argument("number", nargs="?", help=f"the number: {NUMBER_SYNTAX}")
+    p.add_argument("-o", "--output", help=f"certificate file (default e.g. m<p>{EXTENSION})")
+    p.add_argument("--test", choices=sorted(METHODS),
+                   help="fermat-prp (default), proth, pepin (default for Fermat numbers), "
+                   "lucas-lehmer, cofactor-prp (with --known-factor), delay (with --modulus)")
+    p.add_argument("--known-factor", action="append", metavar="F",
+                   help="a known factor of 2^p-1 (repeatable): test the cofactor N/F (Suyama)")
+    p.add_argument("--modulus", metavar="N", help="a generic odd modulus (decimal or 0x-hex) for "
+                   "the delay computation x^(2^T) mod N")
+    p.add_argument("--squarings", type=int, metavar="T", help="T for --modulus")
     p.add_argument("--key", help="sign with this Ed25519 private key")
     p.add_argument("--passphrase-env", metavar="VAR", help="the key's passphrase is in $VAR")
-    p.add_argument("--base", type=int, default=3, help="Fermat base (default 3)")
+    p.add_argument("--base", help="the base a (default 3; Lucas-Lehmer uses 4; 'auto' for Proth "
+                   "finds one with Jacobi(a/N) = -1, which is also the Proth default)")
     p.add_argument("--depth", type=_depth, default=8,
                    help="proof depth: the verifier does about 1/2^depth of the work (default 8); "
                    "'auto' takes the depth 'chainproof plan' recommends")
@@ -390,7 +459,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_assemble)
 
     p = add("plan", "compare proof depths: disk, certificate size, prover and verifier cost")
-    p.add_argument("number", help="the number, written 2^p-1 (p prime)")
+    p.add_argument("number", help=f"the number: {NUMBER_SYNTAX}")
+    p.add_argument("--test", choices=sorted(set(METHODS) - {"delay"}), help="default: the number's usual test")
     p.add_argument("--max-disk", metavar="SIZE", help="spool disk budget, e.g. 20GB or 500MiB")
     p.add_argument("--plot", metavar="FILE.png", help="also draw verify cost and disk against depth")
     p.set_defaults(func=cmd_plan)

@@ -22,7 +22,6 @@ MAGIC = b"CHAINPRF"
 VERSION = 1
 HEADER = MAGIC + bytes([VERSION])
 
-TEST_FERMAT = "fermat-prp"
 MAX_DEPTH = 24
 MAX_CHECKPOINTS = 1 << MAX_DEPTH
 #: Certificates larger than this are refused before parsing (a policy may lower it).
@@ -39,6 +38,9 @@ _FIELDS: dict[str, type] = {
     "test": str,
 }
 _SIGNATURE_FIELDS: dict[str, type] = {"signature": bytes, "signer": bytes}
+#: Present only with the cofactor-prp test: the known factors of N, as decimal strings.
+_OPTIONAL_FIELDS: dict[str, type] = {"known_factors": list}
+MAX_NUMBER_TEXT = 1 << 20
 
 
 @dataclass(frozen=True)
@@ -55,6 +57,7 @@ class UnverifiedCertificate:
     checkpoints: tuple[bytes, ...]
     signer: bytes | None = None
     signature: bytes | None = None
+    known_factors: tuple[str, ...] | None = None
 
     def body(self, *, with_signature: bool = True) -> dict[str, Any]:
         m: dict[str, Any] = {
@@ -67,6 +70,8 @@ class UnverifiedCertificate:
             "squarings": self.squarings,
             "test": self.test,
         }
+        if self.known_factors is not None:
+            m["known_factors"] = list(self.known_factors)
         if self.signer is not None:
             m["signer"] = self.signer
             if with_signature and self.signature is not None:
@@ -125,10 +130,10 @@ def decode_unverified(data: bytes, *, max_bytes: int = MAX_CERTIFICATE_BYTES) ->
             use_list=True,
             strict_map_key=True,
             object_pairs_hook=_no_duplicates,
-            max_str_len=256,
+            max_str_len=min(len(body), MAX_NUMBER_TEXT),
             max_bin_len=len(body),
             max_array_len=min(len(body), MAX_CHECKPOINTS),
-            max_map_len=len(_FIELDS) + len(_SIGNATURE_FIELDS),
+            max_map_len=len(_FIELDS) + len(_SIGNATURE_FIELDS) + len(_OPTIONAL_FIELDS),
             max_ext_len=0,
         )
     except Rejected:
@@ -141,7 +146,7 @@ def decode_unverified(data: bytes, *, max_bytes: int = MAX_CERTIFICATE_BYTES) ->
         raise Rejected("certificate body is not a map")
     if not all(type(k) is str for k in obj):
         raise Rejected("certificate map keys must be strings")
-    allowed = set(_FIELDS) | set(_SIGNATURE_FIELDS)
+    allowed = set(_FIELDS) | set(_SIGNATURE_FIELDS) | set(_OPTIONAL_FIELDS)
     unknown = sorted(set(obj) - allowed)
     if unknown:
         raise Rejected(f"unknown field {unknown[0]!r}")
@@ -150,12 +155,14 @@ def decode_unverified(data: bytes, *, max_bytes: int = MAX_CERTIFICATE_BYTES) ->
         raise Rejected(f"missing field {missing[0]!r}")
     if ("signer" in obj) != ("signature" in obj):
         raise Rejected("signer and signature must both be present or both absent")
-    for key, typ in (_FIELDS | _SIGNATURE_FIELDS).items():
+    for key, typ in (_FIELDS | _SIGNATURE_FIELDS | _OPTIONAL_FIELDS).items():
         if key in obj and (type(obj[key]) is not typ):
             raise Rejected(f"field {key!r} has the wrong type")
     for key in ("mu", "checkpoints"):
         if not all(type(v) is bytes for v in obj[key]):
             raise Rejected(f"field {key!r} must be a list of byte strings")
+    if "known_factors" in obj and not all(type(v) is str for v in obj["known_factors"]):
+        raise Rejected("field 'known_factors' must be a list of strings")
     cert = UnverifiedCertificate(
         number=obj["number"],
         test=obj["test"],
@@ -167,6 +174,7 @@ def decode_unverified(data: bytes, *, max_bytes: int = MAX_CERTIFICATE_BYTES) ->
         checkpoints=tuple(obj["checkpoints"]),
         signer=obj.get("signer"),
         signature=obj.get("signature"),
+        known_factors=tuple(obj["known_factors"]) if "known_factors" in obj else None,
     )
     if encode(cert) != data:
         raise Rejected("certificate is not in canonical encoding")

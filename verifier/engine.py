@@ -23,7 +23,6 @@ from typing import Any, BinaryIO
 
 import msgpack
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
-from gmpy2 import mpz
 
 from .certify import SelfCheckFailed, build_certificate
 from .codec import MAX_DEPTH
@@ -37,7 +36,8 @@ from .gerbicz import (
     GerbiczChain,
     default_block,
 )
-from .numbers import Mersenne, fermat_verdict, validate_base
+from .methods import Method, Verdict, default_method, method
+from .numbers import Modulus
 
 STATE_MAGIC = b"CHAINSTA"
 STATE_VERSION = 1
@@ -74,16 +74,24 @@ def _fsync_dir(folder: Path) -> None:
 
 @dataclass(frozen=True)
 class RunConfig:
-    """What to run: a Fermat PRP test of ``number`` to ``base`` with a proof of ``depth``."""
+    """What to run: ``test`` (methods.py; default: the number's usual test) of ``number`` with
+    ``base``, and a proof of ``depth``. ``known_factors`` go with cofactor-prp, ``delay_squarings``
+    (T) with delay."""
 
-    number: Mersenne
+    number: Modulus
     base: int = 3
     depth: int = 8
     block: int = 0  # Gerbicz block length L; 0 picks default_block
     blocks_per_check: int = 0  # B; 0 picks default_block
+    test: str = ""
+    known_factors: tuple[int, ...] = ()
+    delay_squarings: int | None = None
 
     def __post_init__(self) -> None:
-        validate_base(self.number, self.base)
+        m = method(self.test) if self.test else default_method(self.number, self.known_factors)
+        object.__setattr__(self, "test", m.name)
+        object.__setattr__(self, "known_factors", tuple(sorted(set(self.known_factors))))
+        m.check(self.number, self.base, self.known_factors, self.delay_squarings)
         if not 1 <= self.depth <= MAX_DEPTH or (1 << self.depth) > self.squarings:
             raise UsageError(f"depth {self.depth} impossible: need 1 <= depth <= "
                              f"{min(MAX_DEPTH, self.squarings.bit_length() - 1)}")
@@ -94,8 +102,16 @@ class RunConfig:
             raise UsageError("Gerbicz block sizes must be positive")
 
     @property
+    def method(self) -> Method:
+        return method(self.test)
+
+    @property
+    def group(self) -> Any:
+        return self.method.group(self.number)
+
+    @property
     def squarings(self) -> int:
-        return self.number.p
+        return self.method.squarings(self.number, self.delay_squarings)
 
     def grid(self, extra: Iterable[int] = ()) -> CaptureGrid:
         T, d = self.squarings, self.depth
@@ -104,6 +120,9 @@ class RunConfig:
     def identity(self) -> dict[str, Any]:
         return {
             "number": self.number.text,
+            "test": self.test,
+            "known_factors": [str(f) for f in self.known_factors],
+            "squarings": self.squarings,
             "base": self.base,
             "depth": self.depth,
             "block": self.block,
@@ -123,18 +142,19 @@ class RunReport:
     resumed_at: int | None  # step a resumed run started from, or None for a fresh run
     result: str
     residue64: str
+    verdict: Verdict
     warnings: list[str] = field(default_factory=list)
 
 
 class Spool:
     """Fixed-size records (residue || SHA-256(residue)) for u_1..u_n, record j at (j-1)*size."""
 
-    def __init__(self, path: Path, number: Mersenne, fresh: bool) -> None:
-        self.path, self.number = path, number
-        self.size = number.nbytes + DIGEST
+    def __init__(self, path: Path, group: Any, fresh: bool) -> None:
+        self.path, self.number = path, group
+        self.size = group.element_bytes + DIGEST
         self.fh: BinaryIO = open(path, "w+b" if fresh else "r+b")  # noqa: SIM115 closed in close()
 
-    def write(self, j: int, x: mpz) -> None:
+    def write(self, j: int, x: Any) -> None:
         data = self.number.to_bytes(x)
         self.fh.seek((j - 1) * self.size)
         self.fh.write(data + hashlib.sha256(data).digest())
@@ -147,7 +167,7 @@ class Spool:
             raise RunFailed(f"spool record {j} in {self.path} is damaged; restart the run")
         return data, digest
 
-    def read(self, j: int) -> mpz:
+    def read(self, j: int) -> Any:
         return self.number.from_bytes(self.read_record(j)[0])
 
     def keep(self, count: int) -> None:
@@ -202,7 +222,7 @@ class Run:
 
     # -- checkpoints -----------------------------------------------------------------------
     def _encode_state(self, state: ChainState, committed: int) -> bytes:
-        num = self.config.number
+        num = self.config.group
         body = msgpack.packb(
             {
                 **self.config.identity(),
@@ -282,7 +302,7 @@ class Run:
             ) from None
 
     def _run(self) -> RunReport:
-        cfg, num = self.config, self.config.number
+        cfg, num = self.config, self.config.group
         t0 = self.clock()
         saved = self._load_state()
         if saved is None and self.out.exists():
@@ -302,7 +322,7 @@ class Run:
                 self.spool.read_record(j)
             self._last_save = self.clock()
 
-            def on_stop(step: int, x: mpz) -> None:
+            def on_stop(step: int, x: Any) -> None:
                 j = grid.index(step)
                 assert j is not None
                 self.spool.write(j, x)
@@ -321,7 +341,8 @@ class Run:
                     report_progress(step, cfg.squarings)
 
             chain = GerbiczChain(
-                num, mpz(cfg.base), cfg.squarings, cfg.block, cfg.blocks_per_check,
+                num, cfg.method.start(cfg.number, cfg.base), cfg.squarings, cfg.block,
+                cfg.blocks_per_check,
                 grid=grid, on_stop=on_stop, on_commit=on_commit, on_rollback=on_rollback,
                 fault=self.fault, max_failures=self.max_failures, stats=stats,
                 progress=on_block if report_progress is not None else None,
@@ -332,8 +353,8 @@ class Run:
                 final = state.x
             digests = tuple(self.spool.read_record(j)[1] for j in range(1, grid.count + 1))
             try:
-                data = build_certificate(num, cfg.base, cfg.squarings, cfg.depth, final, digests,
-                                         self.spool.read, self.key)
+                data = build_certificate(cfg.method, cfg.number, cfg.base, cfg.squarings, cfg.depth,
+                                         final, digests, self.spool.read, self.key, cfg.known_factors)
             except SelfCheckFailed as exc:
                 raise RunFailed(
                     f"self-check of the new certificate failed ({exc}); the run state is kept and the "
@@ -345,7 +366,7 @@ class Run:
         atomic_write(self.out, data)
         for path in (self.spool_path, self.state_path, self.prev_path):
             path.unlink(missing_ok=True)
-        result, residue64 = fermat_verdict(num, cfg.base, final)
+        verdict = cfg.method.verdict(cfg.number, cfg.base, final, cfg.known_factors)
         return RunReport(
             certificate=self.out,
             certificate_bytes=len(data),
@@ -355,7 +376,8 @@ class Run:
             gerbicz_checks=stats.checks,
             errors_recovered=stats.recoveries,
             resumed_at=state.step if state is not None else None,
-            result=result,
-            residue64=residue64,
+            result=verdict.result,
+            residue64=verdict.residue64,
+            verdict=verdict,
             warnings=self.warnings,
         )

@@ -17,11 +17,9 @@ import bisect
 import math
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
-
-from gmpy2 import mpz
+from typing import Any
 
 from .errors import RunFailed
-from .numbers import Mersenne
 
 #: Consecutive failed checks after which a run gives up instead of looping on broken hardware.
 DEFAULT_MAX_CONSECUTIVE_FAILURES = 8
@@ -50,8 +48,8 @@ class ChainState:
     """A point of the chain that a passed check covers: step i, x_i and the running product d."""
 
     step: int
-    x: mpz
-    d: mpz
+    x: Any
+    d: Any
 
 
 @dataclass
@@ -92,13 +90,14 @@ class CaptureGrid:
         return best
 
 
-OnStop = Callable[[int, mpz], None]
+OnStop = Callable[[int, Any], None]
 OnState = Callable[[ChainState], None]
-Fault = Callable[[int, mpz], mpz]
+Fault = Callable[[int, Any], Any]
 
 
 class GerbiczChain:
-    """Compute x_0^(2^total) under the Gerbicz check, resumable from a verified ChainState.
+    """Compute x_0^(2^total) in ``group`` (numbers.py: residues or the Lucas torus) under the
+    Gerbicz check, resumable from a verified ChainState.
 
     Callbacks: ``on_stop(step, x)`` at every capture step (the residue is not yet covered by a
     check), ``on_commit(state)`` after each passed check, ``on_rollback(state)`` after a failed one
@@ -110,8 +109,8 @@ class GerbiczChain:
 
     def __init__(
         self,
-        number: Mersenne,
-        x0: mpz,
+        group: Any,
+        x0: Any,
         total: int,
         block: int,
         blocks_per_check: int,
@@ -127,7 +126,7 @@ class GerbiczChain:
     ) -> None:
         if block < 1 or blocks_per_check < 1:
             raise ValueError("block and blocks_per_check must be >= 1")
-        self.number, self.x0, self.total = number, mpz(x0), total
+        self.group, self.x0, self.total = group, x0, total
         self.L, self.B = block, blocks_per_check
         self.grid = grid or CaptureGrid(0, 1, 0)
         self.on_stop, self.on_commit, self.on_rollback = on_stop, on_commit, on_rollback
@@ -143,7 +142,7 @@ class GerbiczChain:
         nxt = self.grid.next_after(step)
         return limit if nxt is None or nxt > limit else nxt
 
-    def _visit(self, step: int, x: mpz) -> mpz:
+    def _visit(self, step: int, x: Any) -> Any:
         if self.fault is not None:
             x = self.fault(step, x)
         if self.on_stop is not None and self.grid.index(step) is not None:
@@ -161,9 +160,9 @@ class GerbiczChain:
         if self.on_rollback is not None:
             self.on_rollback(verified)
 
-    def run(self, state: ChainState | None = None) -> mpz:
+    def run(self, state: ChainState | None = None) -> Any:
         """Run from ``state`` (default: the start) to step ``total``; return x_total."""
-        num, L, B, T = self.number, self.L, self.B, self.total
+        num, L, B, T = self.group, self.L, self.B, self.total
         verified = state or self.start_state()
         self._consecutive = 0
         end_full = T - T % L

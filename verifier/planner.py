@@ -10,16 +10,14 @@ most 2% of the run.
 from __future__ import annotations
 
 import math
-import random
 import time
 from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from typing import Any
 
-from gmpy2 import mpz
-
 from .codec import MAX_DEPTH
-from .numbers import Mersenne
+from .methods import Method, default_method
+from .numbers import Modulus
 
 #: One multiplication modulo N in squarings (gmpy2: 133 us vs 107 us at p = 86243).
 MULTIPLY_COST = 1.25
@@ -28,51 +26,62 @@ MAX_PROVER_EXTRA = 0.02
 DIGEST = 32
 
 
-def challenge_bits(number: Mersenne) -> int:
-    """Bit length of a challenge r = c + 2p*h with 64-bit h."""
-    return 64 + (2 * number.p).bit_length()
+def _chain(number: Modulus, test: Method | None = None, squarings: int | None = None) -> tuple[Any, int]:
+    m = test or default_method(number)
+    return m.group(number), m.squarings(number, squarings)
 
 
-def exponentiation_cost(number: Mersenne) -> float:
+def challenge_bits(number: Modulus, test: Method | None = None) -> int:
+    """Bit length of a challenge r = c + lam*h with 64-bit h (lam = 2p for 2^p - 1)."""
+    group, _ = _chain(number, test, 2)
+    return 64 + int(group.known_order_exponent).bit_length()
+
+
+def exponentiation_cost(number: Modulus, test: Method | None = None) -> float:
     """Sliding-window exponentiation by one challenge, in squaring-equivalents."""
-    bits = challenge_bits(number)
+    bits = challenge_bits(number, test)
     return (bits - 1) + (bits / 5 + 8) * MULTIPLY_COST
 
 
-def verifier_squarings(number: Mersenne, depth: int) -> float:
+def verifier_squarings(number: Modulus, depth: int, test: Method | None = None,
+                       squarings: int | None = None) -> float:
     """Head, halvings (two exponentiations and two multiplications per level), final segment and
     its Gerbicz check (about 2*sqrt(s))."""
-    T = number.p
+    _, T = _chain(number, test, squarings)
     s = T >> depth
-    halvings = depth * (2 * exponentiation_cost(number) + 2 * MULTIPLY_COST)
+    halvings = depth * (2 * exponentiation_cost(number, test) + 2 * MULTIPLY_COST)
     return T % (1 << depth) + halvings + s + 2 * math.isqrt(s) * MULTIPLY_COST
 
 
-def prover_extra_squarings(number: Mersenne, depth: int) -> float:
+def prover_extra_squarings(number: Modulus, depth: int, test: Method | None = None) -> float:
     """Building mu_1..mu_d: 2^d - d - 1 exponentiations and as many multiplications."""
     nodes = (1 << depth) - depth - 1
-    return nodes * (exponentiation_cost(number) + MULTIPLY_COST)
+    return nodes * (exponentiation_cost(number, test) + MULTIPLY_COST)
 
 
-def certificate_bytes(number: Mersenne, depth: int, signed: bool = True) -> int:
+def certificate_bytes(number: Modulus, depth: int, signed: bool = True, test: Method | None = None) -> int:
     """Certificate size: header, field names, final + depth residues, 2^d checkpoint hashes."""
-    residue = number.nbytes + 5  # msgpack bin header
+    group, _ = _chain(number, test, 2)
+    residue = group.element_bytes + 5  # msgpack bin header
     fixed = 9 + 110 + len(number.text)
     sig = 2 * 12 + 32 + 64 if signed else 0
     return fixed + (depth + 1) * residue + (1 << depth) * (DIGEST + 2) + sig
 
 
-def spool_bytes(number: Mersenne, depth: int) -> int:
-    return (1 << depth) * (number.nbytes + DIGEST)
+def spool_bytes(number: Modulus, depth: int, test: Method | None = None) -> int:
+    group, _ = _chain(number, test, 2)
+    return (1 << depth) * (group.element_bytes + DIGEST)
 
 
-def measure_squaring_seconds(number: Mersenne, budget: float = 0.2,
+def measure_squaring_seconds(number: Modulus, budget: float = 0.2, test: Method | None = None,
                              clock: Callable[[], float] = time.perf_counter) -> float:
-    """Time squarings of a random residue for about ``budget`` seconds (at least 3)."""
-    x = mpz(random.Random(number.p).getrandbits(number.p)) % number.N
+    """Time squarings of the test's chain start for about ``budget`` seconds (at least 3)."""
+    m = test or default_method(number)
+    group = m.group(number)
+    x = group.square_n(m.start(number, m.default_base), 8)  # a full-size element
     n, t0 = 0, clock()
     while n < 3 or (clock() - t0 < budget and n < 4096):
-        x = number.square_n(x, 1)
+        x = group.square_n(x, 1)
         n += 1
     return (clock() - t0) / n
 
@@ -98,7 +107,8 @@ class DepthOption:
 
 @dataclass(frozen=True)
 class Plan:
-    number: Mersenne
+    number: Modulus
+    squarings: int
     squaring_seconds: float
     run_seconds: float
     max_disk: int | None
@@ -112,7 +122,7 @@ class Plan:
     def as_dict(self) -> dict[str, Any]:
         return {
             "number": self.number.text,
-            "squarings": self.number.p,
+            "squarings": self.squarings,
             "squaring_seconds": self.squaring_seconds,
             "run_seconds": self.run_seconds,
             "max_disk": self.max_disk,
@@ -122,22 +132,24 @@ class Plan:
         }
 
 
-def plan(number: Mersenne, *, max_disk: int | None = None, max_prover_extra: float = MAX_PROVER_EXTRA,
-         squaring_seconds: float | None = None) -> Plan:
-    """Cost of every possible depth for a Fermat PRP run of ``number``, with a recommendation.
+def plan(number: Modulus, *, max_disk: int | None = None, max_prover_extra: float = MAX_PROVER_EXTRA,
+         squaring_seconds: float | None = None, test: Method | None = None,
+         squarings: int | None = None) -> Plan:
+    """Cost of every possible depth for a run of ``test`` (default: the number's usual test) on
+    ``number``, with a recommendation.
 
     If no depth fits both budgets, the recommendation is the depth with the smallest
     worker-plus-verifier cost among those that fit the disk (depth 1 if none does).
     """
-    t_sq = squaring_seconds if squaring_seconds is not None else measure_squaring_seconds(number)
-    T = number.p
+    t_sq = squaring_seconds if squaring_seconds is not None else measure_squaring_seconds(number, test=test)
+    _, T = _chain(number, test, squarings)
     options = []
     for d in range(1, min(MAX_DEPTH, T.bit_length() - 1) + 1):
-        extra = prover_extra_squarings(number, d)
-        ver = verifier_squarings(number, d)
-        disk = spool_bytes(number, d)
+        extra = prover_extra_squarings(number, d, test)
+        ver = verifier_squarings(number, d, test, squarings)
+        disk = spool_bytes(number, d, test)
         options.append(DepthOption(
-            depth=d, spool_bytes=disk, certificate_bytes=certificate_bytes(number, d),
+            depth=d, spool_bytes=disk, certificate_bytes=certificate_bytes(number, d, test=test),
             prover_extra_squarings=extra, prover_extra_fraction=extra / T,
             prover_extra_seconds=extra * t_sq, verifier_squarings=ver, verify_seconds=ver * t_sq,
             self_check_seconds=ver * t_sq,
@@ -151,7 +163,7 @@ def plan(number: Mersenne, *, max_disk: int | None = None, max_prover_extra: flo
         fits = [o for o in options if o.fits_disk] or options[:1]
         best = min(fits, key=lambda o: (o.prover_extra_squarings + o.verifier_squarings, o.depth))
     options = [o if o is not best else DepthOption(**{**o.as_dict(), "recommended": True}) for o in options]
-    return Plan(number, t_sq, T * t_sq, max_disk, max_prover_extra, tuple(options))
+    return Plan(number, T, t_sq, T * t_sq, max_disk, max_prover_extra, tuple(options))
 
 
 _UNITS = {"": 1, "B": 1, "K": 10**3, "KB": 10**3, "M": 10**6, "MB": 10**6, "G": 10**9, "GB": 10**9,

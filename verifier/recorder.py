@@ -34,7 +34,10 @@ from .certify import SelfCheckFailed, build_certificate
 from .codec import MAX_DEPTH
 from .engine import atomic_write
 from .errors import StorageError, UsageError
-from .numbers import Mersenne, parse_number, validate_base
+from .methods import FermatPRP
+from .numbers import Mersenne, parse_number
+
+FERMAT = FermatPRP()
 
 SPOOL_FORMAT = "chainproof-spool"
 SPOOL_VERSION = 1
@@ -59,6 +62,9 @@ class SpoolPlan:
 
     def __post_init__(self) -> None:
         num = self.number
+        if not isinstance(num, Mersenne):
+            raise SpoolError(f"manifest: spool folders carry 2^p-1 Fermat PRP runs in this version, "
+                             f"not {num.text}")
         if self.squarings != num.p:
             raise SpoolError(f"manifest: squarings {self.squarings} is not p = {num.p} for {num.text}")
         if not 1 <= self.depth <= MAX_DEPTH or (1 << self.depth) > self.squarings:
@@ -66,7 +72,7 @@ class SpoolPlan:
         if self.byte_order not in ("little", "big"):
             raise SpoolError(f"manifest: byte_order must be 'little' or 'big', not {self.byte_order!r}")
         try:
-            validate_base(num, self.base)
+            FERMAT.check(num, self.base, (), None)
         except UsageError as exc:
             raise SpoolError(f"manifest: {exc}") from None
 
@@ -112,6 +118,9 @@ class SpoolPlan:
             number = parse_number(obj["number"])
         except UsageError as exc:
             raise SpoolError(f"manifest: {exc}") from None
+        if not isinstance(number, Mersenne):
+            raise SpoolError(f"manifest: spool folders carry 2^p-1 Fermat PRP runs in this version, "
+                             f"not {number.text}")
         plan = cls(number, obj["base"], obj["squarings"], obj["depth"], obj["byte_order"])
         if obj["residue_bytes"] != number.nbytes:
             raise SpoolError(f"manifest: residue_bytes {obj['residue_bytes']} but {number.text} needs "
@@ -199,8 +208,8 @@ def assemble(folder: Path, out: Path, key: Ed25519PrivateKey | None = None) -> b
     digests = [spool.read(j)[1] for j in range(1, plan.count + 1)]
     final = spool.read(plan.count)[0]
     try:
-        data = build_certificate(plan.number, plan.base, plan.squarings, plan.depth, final, digests,
-                                 lambda j: spool.read(j)[0], key)
+        data = build_certificate(FERMAT, plan.number, plan.base, plan.squarings, plan.depth, final,
+                                 digests, lambda j: spool.read(j)[0], key)
     except SelfCheckFailed:
         raise SpoolError(
             f"{folder}: the residues do not form the squaring chain base^(2^k) mod N that the "

@@ -9,21 +9,16 @@ from __future__ import annotations
 import hashlib
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from typing import Any
 
-from gmpy2 import mpz
-
-from .codec import MAX_CERTIFICATE_BYTES, MAX_DEPTH, TEST_FERMAT, UnverifiedCertificate
+from .codec import MAX_CERTIFICATE_BYTES, MAX_DEPTH, UnverifiedCertificate
 from .errors import Rejected, UsageError
 from .gerbicz import ChainStats, GerbiczChain, single_check_block
-from .numbers import Mersenne, fermat_verdict, parse_number, validate_base
+from .methods import PRP_CAUTION, Method, method, transcript_context  # noqa: F401 (re-export)
+from .numbers import Modulus, parse_number
 from .proof import Statement, reduce_claim, residue_digest
 from .signing import fingerprint, signature_valid
-
-PRP_CAUTION = (
-    "Caution: a Fermat PRP result is not a primality proof. 'probable-prime' means the number "
-    "passed a Fermat test, which some composites also pass; 'composite' is definite."
-)
 
 DIGEST_BYTES = 32
 
@@ -59,15 +54,18 @@ class VerifiedResult:
     number: str
     test: str
     base: int
-    result: str  # "probable-prime" | "composite"
-    residue64: str  # low 64 bits of base^(N-1) mod N, 16 hex digits
+    result: str  # "probable-prime" | "composite" | "prime" | "computed"
+    residue64: str  # 16 hex digits: low 64 bits of the test's residue (spec/protocol.md, 8)
     claimed_squarings: int
     depth: int
     squarings: int  # every squaring the verifier did: head, halvings, final segment, its check
     seconds: float
     signer: str | None  # fingerprint, or None for an unsigned certificate accepted by policy
     final_digest: str  # SHA-256 of the final residue, hex
-    caution: str = field(default=PRP_CAUTION)
+    proved: bool  # the test is deterministic: the verdict is a proof (given a sound certificate)
+    subject: str  # what the verdict is about: the number, or its cofactor
+    caution: str
+    known_factors: tuple[int, ...] = ()
 
 
 def _check_signature(cert: UnverifiedCertificate, policy: VerificationPolicy) -> str | None:
@@ -82,38 +80,55 @@ def _check_signature(cert: UnverifiedCertificate, policy: VerificationPolicy) ->
     return fingerprint(cert.signer)
 
 
-def _residue(num: Mersenne, data: bytes, what: str) -> mpz:
-    if len(data) != num.nbytes:
-        raise Rejected(f"{what} is {len(data)} bytes, expected {num.nbytes}")
-    x = num.from_bytes(data)
-    if not 0 < x < num.N:
-        raise Rejected(f"{what} is outside [1, N-1]")
-    if not num.is_unit(x):
-        raise Rejected(f"{what} is not a unit modulo N")
+def _element(group: Any, data: bytes, what: str) -> Any:
+    if len(data) != group.element_bytes:
+        raise Rejected(f"{what} is {len(data)} bytes, expected {group.element_bytes}")
+    x = group.from_bytes(data)
+    problem = group.check_element(x)
+    if problem is not None:
+        raise Rejected(f"{what} {problem}")
     return x
+
+
+def _factors(cert: UnverifiedCertificate) -> tuple[int, ...]:
+    if (cert.known_factors is not None) != (cert.test == "cofactor-prp"):
+        raise Rejected("known_factors must be present exactly for the cofactor-prp test")
+    out = []
+    for text in cert.known_factors or ():
+        if not text.isdigit() or not text.isascii() or text.startswith("0") or len(text) > 10_000:
+            raise Rejected("a known factor is not a canonical decimal number")
+        out.append(int(text))
+    if out != sorted(set(out)):
+        raise Rejected("known factors must be listed in increasing order without repeats")
+    return tuple(out)
 
 
 def statement_of(
     cert: UnverifiedCertificate, policy: VerificationPolicy
-) -> tuple[Statement, list[mpz]]:
-    """Check everything that needs no squaring; return the proof statement and decoded mu values.
+) -> tuple[Statement, list[Any], Method, Modulus, tuple[int, ...]]:
+    """Check everything that needs no squaring; return the proof statement, the decoded mu
+    values, the test, the number and the known factors.
 
     Raises Rejected for any structural problem.
     """
-    if cert.test != TEST_FERMAT:
-        raise Rejected(f"unknown test {cert.test!r}")
+    try:
+        test = method(cert.test)
+    except UsageError as exc:
+        raise Rejected(str(exc)) from None
     try:
         num = parse_number(cert.number)
     except UsageError as exc:
         raise Rejected(str(exc)) from None
     if cert.number != num.text:
         raise Rejected(f"number not in canonical spelling (expected {num.text!r})")
-    if cert.squarings != num.p:
-        raise Rejected(f"squarings is {cert.squarings}, a Fermat test of {num.text} needs {num.p}")
+    factors = _factors(cert)
     try:
-        validate_base(num, cert.base)
+        test.check(num, cert.base, factors, cert.squarings)
+        needed = test.squarings(num, cert.squarings)
     except UsageError as exc:
         raise Rejected(str(exc)) from None
+    if cert.squarings != needed:
+        raise Rejected(f"squarings is {cert.squarings}, {test.name} of {num.text} needs {needed}")
     d = cert.depth
     if not 1 <= d <= MAX_DEPTH or (1 << d) > cert.squarings:
         raise Rejected(f"depth {d} impossible for {cert.squarings} squarings")
@@ -125,20 +140,23 @@ def statement_of(
         raise Rejected(f"{len(cert.checkpoints)} checkpoint hashes, expected {1 << d}")
     if any(len(c) != DIGEST_BYTES for c in cert.checkpoints):
         raise Rejected("a checkpoint hash is not 32 bytes")
-    final = _residue(num, cert.final, "final residue")
-    mus = [_residue(num, m, f"proof value {i + 1}") for i, m in enumerate(cert.mu)]
+    group = test.group(num)
+    final = _element(group, cert.final, "final residue")
+    mus = [_element(group, m, f"proof value {i + 1}") for i, m in enumerate(cert.mu)]
     if cert.checkpoints[-1] != hashlib.sha256(cert.final).digest():
         raise Rejected("last checkpoint hash does not match the final residue")
     # mu_1 is itself a captured residue (the midpoint), so its hash must be in the list.
     if cert.checkpoints[(1 << (d - 1)) - 1] != hashlib.sha256(cert.mu[0]).digest():
         raise Rejected("midpoint checkpoint hash does not match the first proof value")
-    st = Statement(num, cert.base, cert.squarings, d, final, cert.checkpoints, cert.signer or b"")
+    st = Statement(group, test.start(num, cert.base), cert.squarings, d, final, cert.checkpoints,
+                   cert.signer or b"",
+                   transcript_context(cert.number, cert.test, cert.base, cert.known_factors))
     if st.head + st.segment > policy.max_verifier_squarings:
         raise Rejected(
             f"checking needs {st.head + st.segment} squarings, above the policy limit "
             f"{policy.max_verifier_squarings} (a deeper proof is needed)"
         )
-    return st, mus
+    return st, mus, test, num, factors
 
 
 def verify(
@@ -154,25 +172,28 @@ def verify(
     """
     t0 = clock()
     signer = _check_signature(cert, policy)
-    st, mus = statement_of(cert, policy)
-    num = st.number
+    st, mus, test, num, factors = statement_of(cert, policy)
     x, y, s, squarings = reduce_claim(st, mus)
     stats = ChainStats(squarings=squarings)
     block, per_check = single_check_block(s)
-    got = GerbiczChain(num, x, s, block, per_check, stats=stats).run()
+    got = GerbiczChain(st.group, x, s, block, per_check, stats=stats).run()
     if got != y:
         raise Rejected("proof does not verify: the final segment does not match the claim")
-    result, residue64 = fermat_verdict(num, cert.base, st.final)
+    verdict = test.verdict(num, cert.base, st.final, factors)
     return VerifiedResult(
         number=num.text,
         test=cert.test,
         base=cert.base,
-        result=result,
-        residue64=residue64,
+        result=verdict.result,
+        residue64=verdict.residue64,
+        proved=verdict.proved,
+        subject=verdict.subject,
+        caution=verdict.caution,
+        known_factors=factors,
         claimed_squarings=cert.squarings,
         depth=st.depth,
         squarings=stats.squarings,
         seconds=clock() - t0,
         signer=signer,
-        final_digest=residue_digest(num, st.final).hex(),
+        final_digest=residue_digest(st.group, st.final).hex(),
     )
