@@ -6,7 +6,7 @@ Forms (all odd moduli N > 3, arithmetic on gmpy2 ``mpz`` values kept in [0, N)):
   :class:`KTwoN` k*2^n + c (k odd, c = +-1). Reduction uses k*2^n = -c (mod N): write
   v = a*2^n + b, then k*v = k*b - c*a (mod N), and the division by the small k is made exact by
   adding a multiple of N. For k = 1 that is the familiar shift-and-add fold. Measured with gmpy2
-  on 86,000-bit moduli: 3.5-3.8x faster than ``v % N`` (bench/README.md).
+  on 86,000-bit moduli, squaring included: 3.6-4.0x faster than ``v % N`` (bench/bench_forms.py).
 * :class:`GenericModulus` any odd N (plain ``%``): for delay / time-lock computations.
 
 Groups (what Gerbicz checks and Pietrzak proofs operate on): a form itself is the group of units
