@@ -82,7 +82,9 @@ def _progress_bar(enabled: bool, label: str) -> Iterator[Callable[[int, int], No
         TextColumn("{task.fields[rate]:>9} sq/s"),
         TimeRemainingColumn(),
     )
-    with Progress(*columns, transient=True) as bar:
+    from rich.console import Console
+
+    with Progress(*columns, transient=True, console=Console(stderr=True)) as bar:
         task = bar.add_task(label, total=None, rate="")
 
         def update(step: int, total: int) -> None:
@@ -396,6 +398,247 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# -- coordinator operations ------------------------------------------------------------------------
+def _open_ledger(spec: str | None) -> Any:
+    if not spec:
+        return None
+    from .ledger import Ledger
+
+    return Ledger(spec, version=__version__)
+
+
+def cmd_audit(args: argparse.Namespace) -> int:
+    from .audit import AuditSettings, run_audit
+    from .ledger import Outcome
+
+    settings = AuditSettings(_policy(args), args.timeout)
+    ledger_error: list[str] = []
+    try:
+        ledger = _open_ledger(args.ledger)
+    except StorageError as exc:  # audit anyway; report, and exit 2 at the end
+        ledger, ledger_error = None, [str(exc)]
+        print(f"chainproof: error: {exc}; auditing without recording", file=sys.stderr)
+    report = _Report(args.report) if args.report else None
+    counts: dict[str, int] = {}
+    show_bar = not args.json and sys.stderr.isatty()
+
+    def record(o: Outcome, done: int, total: int) -> None:
+        counts[o.outcome] = counts.get(o.outcome, 0) + 1
+        if ledger is not None and not ledger_error:
+            try:
+                ledger.record(o)
+            except StorageError as exc:  # keep auditing; nothing is claimed that was not checked
+                ledger_error.append(str(exc))
+                print(f"chainproof: error: {exc}; results are no longer recorded", file=sys.stderr)
+        if report is not None:
+            report.write(o)
+        if args.json:
+            print(json.dumps({"event": "certificate", **o.as_dict()}, sort_keys=True))
+        else:
+            detail = f"{o.number}: {o.result}" if o.outcome == "verified" else (o.reason or "")
+            print(f"{o.outcome.upper():<9} {o.path}  {detail}", flush=True)  # rich keeps the bar below
+        if bar_update is not None:
+            bar_update(done, total)
+
+    bar_update: Any = None
+    try:
+        with _progress_bar(show_bar, "audit") as bar:
+            bar_update = bar
+            outcomes = run_audit(args.paths, settings, jobs=args.jobs, dask_address=args.dask,
+                                 on_outcome=record)
+    except FileNotFoundError as exc:
+        raise UsageError(f"no such file or folder: {exc}") from None
+    except KeyboardInterrupt:
+        _error(args, "interrupted; the ledger holds every result finished so far")
+        return 130
+    finally:
+        if report is not None:
+            report.close()
+    if not outcomes:
+        raise UsageError("no certificates found")
+    conflicts = ledger.conflicts() if ledger is not None and not ledger_error else []
+    summary = {"event": "summary", "certificates": len(outcomes), **counts,
+               "conflicts": [[a["path"], b["path"]] for a, b in conflicts]}
+    if args.json:
+        print(json.dumps(summary, sort_keys=True))
+    else:
+        print(f"{len(outcomes)} certificates: " + ", ".join(f"{v} {k}" for k, v in sorted(counts.items())))
+        for a, b in conflicts:
+            print(f"CONFLICT  {a['number']} ({a['test']}, base {a['base']}): {a['path']} and {b['path']} "
+                  "are both verified but disagree on the final residue; run 'chainproof compare' on them")
+    if ledger_error:
+        return EXIT_USAGE
+    return EXIT_OK if counts.get("verified", 0) == len(outcomes) else EXIT_REJECTED
+
+
+class _Report:
+    """--report FILE: JSON lines (.jsonl) or CSV (.csv), one row per certificate."""
+
+    FIELDS = ("path", "outcome", "reason", "number", "test", "base", "result", "proved", "residue64",
+              "signer", "depth", "seconds", "squarings", "certificate_sha256")
+
+    def __init__(self, path: str) -> None:
+        import csv
+
+        self.csv = path.endswith(".csv")
+        if not (self.csv or path.endswith(".jsonl")):
+            raise UsageError("--report must end in .jsonl or .csv")
+        try:
+            self.fh = open(path, "w", newline="")  # noqa: SIM115 closed in close()
+        except OSError as exc:
+            raise UsageError(f"cannot write {path}: {exc.strerror}") from None
+        self.writer = csv.DictWriter(self.fh, self.FIELDS, extrasaction="ignore") if self.csv else None
+        if self.writer is not None:
+            self.writer.writeheader()
+
+    def write(self, o: Any) -> None:
+        row = o.as_dict()
+        if self.writer is not None:
+            self.writer.writerow(row)
+        else:
+            self.fh.write(json.dumps(row, sort_keys=True) + "\n")
+        self.fh.flush()
+
+    def close(self) -> None:
+        self.fh.close()
+
+
+def cmd_ledger(args: argparse.Namespace) -> int:
+    from .ledger import export_rows
+
+    ledger = _open_ledger(args.ledger)
+    rows = list(export_rows(ledger.rows()))
+    conflicts = ledger.conflicts()
+    if args.action == "export":
+        if args.format == "csv":
+            import csv
+
+            fields = sorted({k for r in rows for k in r}) if rows else ["certificate_sha256"]
+            w = csv.DictWriter(sys.stdout, fields)
+            w.writeheader()
+            w.writerows(rows)
+        else:
+            for r in rows:
+                print(json.dumps(r, sort_keys=True))
+        return EXIT_OK
+    conflict_pairs = [[a["path"], b["path"]] for a, b in conflicts]
+    lines = [f"{'outcome':<9} {'number':<22} {'test':<13} {'result':<15} {'residue64':<16}  path"]
+    for r in rows:
+        lines.append(f"{r['outcome']:<9} {_short(str(r['number'] or '-')):<22} {str(r['test'] or '-'):<13} "
+                     f"{str(r['result'] or '-'):<15} {str(r['residue64'] or '-'):<16}  {r['path']}")
+    lines.append(f"{len(rows)} certificates, {len(conflicts)} conflicts")
+    for a, b in conflicts:
+        lines.append(f"CONFLICT  {a['number']}: {a['path']} vs {b['path']}")
+    _emit(args, {"certificates": rows, "conflicts": conflict_pairs}, lines)
+    return EXIT_OK
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from .ledger import compare_checkpoints
+
+    certs = []
+    for name in (args.first, args.second):
+        path = Path(name)
+        try:
+            certs.append(decode_unverified(_read_certificate(path, VerificationPolicy().max_certificate_bytes)))
+        except Rejected as exc:
+            raise UsageError(f"{path}: {exc.reason}") from None
+    a, b = certs
+    same = (a.number, a.test, a.base, a.squarings, a.known_factors) == (b.number, b.test, b.base, b.squarings,
+                                                                         b.known_factors)
+    if not same:
+        raise UsageError("the certificates make claims about different tests; nothing to compare")
+    if a.depth != b.depth:
+        raise UsageError(f"depths differ ({a.depth} vs {b.depth}): their checkpoints fall on different "
+                         "steps; compare certificates of equal depth")
+    d = compare_checkpoints(a.checkpoints, b.checkpoints, a.squarings, a.depth)
+    obj = {"number": a.number, "test": a.test, "depth": a.depth, "agree_up_to": d.agree_up_to,
+           "first_difference": d.first_difference, "step_agreed": d.step_agreed,
+           "step_differs": d.step_differs, "segment_squarings": d.segment}
+    if d.first_difference is None:
+        lines = [f"{a.number}: all {len(a.checkpoints)} checkpoints agree"]
+    else:
+        start = "the start (computable by anyone)" if d.agree_up_to == 0 else \
+            f"checkpoint {d.agree_up_to} (step {d.step_agreed:,}), whose residue both runs share"
+        lines = [
+            f"{a.number}: the runs agree up to {start}",
+            f"  they part at checkpoint {d.first_difference} (step {d.step_differs:,})",
+            f"  re-running those {d.segment:,} squarings (1/{1 << a.depth} of the run) from the shared "
+            "residue settles which run went wrong",
+        ]
+    _emit(args, obj, lines)
+    return EXIT_OK if d.first_difference is None else EXIT_REJECTED
+
+
+def cmd_offload(args: argparse.Namespace) -> int:
+    import hashlib
+
+    from .delegate import SecretStore, offload
+
+    policy = _policy(args)
+    path = Path(args.certificate)
+    data = _read_certificate(path, policy.max_certificate_bytes)
+    try:
+        off = offload(decode_unverified(data, max_bytes=policy.max_certificate_bytes),
+                      hashlib.sha256(data).hexdigest(), str(path), policy)
+    except Rejected as exc:
+        _emit(args, {"offloaded": False, "reason": exc.reason}, [f"REJECTED  {path}: {exc.reason}"])
+        return EXIT_REJECTED
+    out = Path(args.output)
+    if out.exists():
+        raise UsageError(f"{out} already exists; choose another output name")
+    secret = SecretStore(Path(args.secrets)).put(off.secret)
+    out.write_text(json.dumps(off.task, indent=1) + "\n")
+    _emit(args, {"offloaded": True, "task": str(out), "task_id": off.task["task_id"],
+                 "squarings": off.task["squarings"], "secret": str(secret)},
+          [f"task {off.task['task_id']} written to {out}: {off.task['squarings']:,} squarings for a helper",
+           f"  keep {secret} private; settle the helper's answer with 'chainproof settle'"])
+    return EXIT_OK
+
+
+def cmd_work(args: argparse.Namespace) -> int:
+    from .delegate import work
+
+    try:
+        text = Path(args.task).read_text()
+    except OSError as exc:
+        raise UsageError(f"cannot read {args.task}: {exc.strerror}") from None
+    show_bar = not args.json and sys.stderr.isatty()
+    try:
+        total = int(json.loads(text).get("squarings", 0))
+    except (ValueError, AttributeError, TypeError):
+        total = 0
+    with _progress_bar(show_bar, "work") as bar:
+        answer, stats = work(text, progress=(lambda step: bar(step, total)) if bar else None)
+    out = Path(args.output)
+    out.write_text(json.dumps(answer, indent=1) + "\n")
+    _emit(args, {"answer": str(out), "task_id": answer["task_id"], "squarings": stats.squarings,
+                 "gerbicz_checks": stats.checks, "errors_recovered": stats.recoveries},
+          [f"answer for task {answer['task_id']} written to {out} ({stats.squarings:,} squarings, "
+           f"{stats.checks} Gerbicz checks)"])
+    return EXIT_OK
+
+
+def cmd_settle(args: argparse.Namespace) -> int:
+    from .delegate import SecretStore, settle
+
+    try:
+        text = Path(args.answer).read_text()
+    except OSError as exc:
+        raise UsageError(f"cannot read {args.answer}: {exc.strerror}") from None
+    outcome = settle(text, SecretStore(Path(args.secrets)))
+    ledger = _open_ledger(args.ledger)
+    if ledger is not None:
+        ledger.record(outcome)
+    if outcome.outcome == "verified":
+        _emit(args, {"verified": True, **outcome.as_dict()},
+              [f"VERIFIED  {outcome.path}: {outcome.number}: {outcome.result} (final segment checked by a "
+               "helper, blinded)"])
+        return EXIT_OK
+    _emit(args, {"verified": False, **outcome.as_dict()}, [f"REJECTED  {outcome.path}: {outcome.reason}"])
+    return EXIT_REJECTED
+
+
 # -- parser -------------------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
@@ -438,16 +681,19 @@ def build_parser() -> argparse.ArgumentParser:
                    help="write run state at most this often (default 60)")
     p.set_defaults(func=cmd_prove)
 
+    def policy_options(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--trusted-key", action="append", metavar="KEY.pub",
+                       help="accept only signatures by this key (repeatable)")
+        p.add_argument("--accept-unsigned", action="store_true",
+                       help="UNSAFE: also accept certificates without a signature")
+        p.add_argument("--min-depth", type=int, default=1, help="reject proofs shallower than this")
+        p.add_argument("--max-squarings", type=int, default=VerificationPolicy.max_verifier_squarings,
+                       metavar="N", help="reject certificates that would make this verifier do more than "
+                       "N squarings for the head and final segment (default 2^25)")
+
     p = add("check", "verify a certificate (exit 0 verified, 1 rejected, 2 usage/IO error)")
     p.add_argument("certificate")
-    p.add_argument("--trusted-key", action="append", metavar="KEY.pub",
-                   help="accept only signatures by this key (repeatable)")
-    p.add_argument("--accept-unsigned", action="store_true",
-                   help="UNSAFE: also accept certificates without a signature")
-    p.add_argument("--min-depth", type=int, default=1, help="reject proofs shallower than this")
-    p.add_argument("--max-squarings", type=int, default=VerificationPolicy.max_verifier_squarings,
-                   metavar="N", help="reject certificates that would make this verifier do more than "
-                   "N squarings for the head and final segment (default 2^25)")
+    policy_options(p)
     p.set_defaults(func=cmd_check)
 
     p = add("assemble", "build a certificate from a spool folder written by another program "
@@ -464,6 +710,48 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-disk", metavar="SIZE", help="spool disk budget, e.g. 20GB or 500MiB")
     p.add_argument("--plot", metavar="FILE.png", help="also draw verify cost and disk against depth")
     p.set_defaults(func=cmd_plan)
+
+    p = add("audit", "verify every certificate under the given files and folders, in parallel "
+            "(exit 0 all verified, 1 some not, 2 usage/IO error)")
+    p.add_argument("paths", nargs="+", help="certificate files, or folders searched for *.cpc")
+    p.add_argument("--jobs", type=int, default=0, help="local worker processes (default: one per core)")
+    p.add_argument("--dask", metavar="tcp://HOST:PORT", help="run on this Dask distributed scheduler")
+    p.add_argument("--ledger", metavar="URL|FILE", help="record outcomes (SQLite file or SQLAlchemy URL)")
+    p.add_argument("--report", metavar="OUT.jsonl|OUT.csv", help="also write one row per certificate")
+    p.add_argument("--timeout", type=float, metavar="SECONDS", help="time limit per certificate")
+    policy_options(p)
+    p.set_defaults(func=cmd_audit)
+
+    p = add("ledger", "show or export the verification ledger")
+    p.add_argument("action", choices=["show", "export"])
+    p.add_argument("--ledger", required=True, metavar="URL|FILE")
+    p.add_argument("--format", choices=["jsonl", "csv"], default="jsonl", help="for export")
+    p.set_defaults(func=cmd_ledger)
+
+    p = add("compare", "name the first checkpoint where two certificates of the same claim part "
+            "(exit 0 identical, 1 they differ, 2 usage/IO error)")
+    p.add_argument("first")
+    p.add_argument("second")
+    p.set_defaults(func=cmd_compare)
+
+    p = add("offload", "check a certificate except its final segment, and write a blinded task for "
+            "an untrusted helper")
+    p.add_argument("certificate")
+    p.add_argument("-o", "--output", required=True, help="task file to write (give it to the helper)")
+    p.add_argument("--secrets", default=".chainproof-secrets", help="private folder for task secrets")
+    policy_options(p)
+    p.set_defaults(func=cmd_offload)
+
+    p = add("work", "(helper) compute a task's squarings under the Gerbicz check and write the answer")
+    p.add_argument("task")
+    p.add_argument("-o", "--output", required=True)
+    p.set_defaults(func=cmd_work)
+
+    p = add("settle", "compare a helper's answer with the kept secret: exit 0 verified, 1 rejected")
+    p.add_argument("answer")
+    p.add_argument("--secrets", default=".chainproof-secrets")
+    p.add_argument("--ledger", metavar="URL|FILE", help="record the outcome")
+    p.set_defaults(func=cmd_settle)
 
     p = add("inspect", "show what a certificate claims, without verifying it")
     p.add_argument("certificate")

@@ -28,5 +28,9 @@ class StorageError(ChainproofError):
     is intact; the same command resumes once the cause is fixed."""
 
 
+class VerifyTimeout(ChainproofError):
+    """Verification did not finish before its deadline: no verdict about the certificate."""
+
+
 class RunFailed(ChainproofError):
     """A run could not finish correctly, e.g. the Gerbicz check kept failing (broken hardware)."""

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from .codec import MAX_CERTIFICATE_BYTES, MAX_DEPTH, UnverifiedCertificate
-from .errors import Rejected, UsageError
+from .errors import Rejected, UsageError, VerifyTimeout
 from .gerbicz import ChainStats, GerbiczChain, single_check_block
 from .methods import PRP_CAUTION, Method, method, transcript_context  # noqa: F401 (re-export)
 from .numbers import Modulus, parse_number
@@ -164,19 +164,29 @@ def verify(
     policy: VerificationPolicy,
     *,
     clock: Callable[[], float] = time.perf_counter,
+    deadline: float | None = None,
 ) -> VerifiedResult:
     """Verify a certificate under ``policy``. Raises Rejected with a reason; no partial results.
 
     Raises RunFailed (not Rejected) if the verifier's own final segment keeps failing its Gerbicz
-    check: then this machine is faulty and says nothing about the certificate.
+    check: then this machine is faulty and says nothing about the certificate. Raises
+    VerifyTimeout if ``clock()`` passes ``deadline`` (checked after the halvings and at every
+    Gerbicz block of the final segment).
     """
     t0 = clock()
+
+    def in_time(_step: int = 0) -> None:
+        if deadline is not None and clock() > deadline:
+            raise VerifyTimeout(f"verification did not finish within its time limit ({clock() - t0:.1f} s)")
+
     signer = _check_signature(cert, policy)
     st, mus, test, num, factors = statement_of(cert, policy)
     x, y, s, squarings = reduce_claim(st, mus)
+    in_time()
     stats = ChainStats(squarings=squarings)
-    block, per_check = single_check_block(s)
-    got = GerbiczChain(st.group, x, s, block, per_check, stats=stats).run()
+    block, per_check = single_check_block(s)  # the deadline is checked every block (~sqrt(s))
+    got = GerbiczChain(st.group, x, s, block, per_check, stats=stats,
+                       progress=in_time if deadline is not None else None).run()
     if got != y:
         raise Rejected("proof does not verify: the final segment does not match the claim")
     verdict = test.verdict(num, cert.base, st.final, factors)
