@@ -304,3 +304,64 @@ def test_command_line_forms(tmp_path: Path, capsys: pytest.CaptureFixture[str]) 
     assert run("check", str(tmp_path / "c.cpc"), "--accept-unsigned")["proved"] is True
     assert main(["prove", "2^29-1", "--test", "proth"]) == 2
     capsys.readouterr()
+
+
+def _cyclic(group: object, g: mpz, limit: int = 1 << 12) -> list[mpz]:
+    out, x = [mpz(1)], g
+    while x != 1 and len(out) < limit:
+        out.append(x)
+        x = group.mul(x, g)  # type: ignore[attr-defined]
+    return out
+
+
+def _sqrt2(num: KTwoN) -> mpz:
+    """sqrt(2) modulo F_m = 2^n + 1 (n = 2^m >= 4): 2^(n/4) * (2^(n/2) - 1)."""
+    return num.mul(num.pow(mpz(2), num.n // 4), num.pow(mpz(2), num.n // 2) - 1)
+
+
+@pytest.mark.parametrize("number, test, make_u, weak_lam", [
+    # k = 9 = 3^2, n even: u = 3 * 2^(n/2) has u^2 = -1 (order 4). A composite: 5 * 73 * 101.
+    ("9*2^12+1", "proth", lambda num: mpz(3) << 6, 2),
+    # F_m: sqrt(2) has order 2^(m+2), above the 2^(m+1) of <2>
+    ("2^(2^5)+1", "pepin", _sqrt2, None),
+    ("2^(2^4)+1", "fermat-prp", _sqrt2, None),
+])
+def test_public_elements_beyond_plus_minus_two_are_neutralised(number: str, test: str, make_u, weak_lam,  # type: ignore[no-untyped-def]
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    """Public elements of known order that a form brings (found in review): lies by them are
+    rejected with the challenge modulus the form declares, and accepted with a smaller one (which
+    shows the test can fail)."""
+    assert 9 * 2**12 + 1 == 5 * 73 * 101  # the Proth case is composite (checked by multiplication)
+    num = parse_number(number)
+    m = METHODS[test]
+    base = Proth.find_base(num) if test == "proth" else 3
+    u = make_u(num)
+    cands = _cyclic(num, u)
+    lam = num.known_order_exponent
+    assert num.pow(u, lam) == 1  # the declared exponent kills u
+    lies = [num.N - 1] + [g for g in cands if g != 1][:5]
+    depth = min(3, (m.squarings(num)).bit_length() - 1)
+    for g in lies:
+        cert, _ = forge(num, base, depth, g, test=m, candidates=cands)
+        with pytest.raises(Rejected):
+            verify(decode_unverified(encode(cert)), ACCEPT_UNSIGNED)
+    weaker = weak_lam or lam // 2
+    monkeypatch.setattr(type(num), "known_order_exponent", property(lambda self: weaker))
+    wins = 0
+    for g in lies:
+        cert, _ = forge(num, base, depth, g, test=m, candidates=cands)
+        try:
+            verify(decode_unverified(encode(cert)), ACCEPT_UNSIGNED)
+            wins += 1
+        except Rejected:
+            pass
+    assert wins >= 1
+
+
+def test_generic_modulus_rules_found_in_review() -> None:
+    with pytest.raises(UsageError, match="perfect power"):
+        parse_modulus(str(sympy.nextprime(2**17) ** 13))
+    with pytest.raises(UsageError, match="is prime"):
+        parse_modulus(str(sympy.nextprime(2**100)))
+    with pytest.raises(UsageError, match="too large"):
+        parse_modulus(hex((1 << 16400) + 1))

@@ -11,6 +11,7 @@ import pytest
 from make_fixtures import fixture_key
 
 from verifier import Run, RunConfig, decode_unverified, parse_number
+from verifier.methods import method, transcript_context
 from verifier.proof import Challenges, Statement
 
 SPEC = (Path(__file__).resolve().parent.parent / "spec" / "protocol.md").read_text()
@@ -35,8 +36,10 @@ def test_protocol_test_vectors(tmp_path: Path, signed: bool) -> None:
     assert hashlib.sha256(data).hexdigest() == want["sha256"]
     cert = decode_unverified(data)
     num = parse_number(cert.number)
-    st = Statement(num, cert.base, cert.squarings, cert.depth, num.from_bytes(cert.final),
-                   cert.checkpoints, cert.signer or b"")
+    test = method(cert.test)
+    st = Statement(test.group(num), test.start(num, cert.base), cert.squarings, cert.depth,
+                   num.from_bytes(cert.final), cert.checkpoints, cert.signer or b"",
+                   transcript_context(cert.number, cert.test, cert.base, cert.known_factors))
     assert st.seed().hex() == want["seed"]
     ch = Challenges(st)
     rs = [ch.next(num.from_bytes(m)) for m in cert.mu]

@@ -18,6 +18,7 @@ knows (see spec/protocol.md, section 5).
 
 from __future__ import annotations
 
+import math
 import re
 from typing import Any
 
@@ -33,6 +34,7 @@ MAX_K = 1 << 32
 #: small order): checked by trial division.
 GENERIC_SMALL_FACTOR_BOUND = 1 << 16
 MIN_GENERIC_BITS = 64
+MAX_GENERIC_BITS = 16384  # matches the 4096 hex digits parse_number accepts
 
 
 class _Exponentiation:
@@ -184,6 +186,20 @@ class KTwoN(Modulus):
         sign = "+" if self.c > 0 else "-"
         return f"{self.k}*2^{self.n}{sign}1" if self.k > 1 else f"2^{self.n}{sign}1"
 
+    @property
+    def known_order_exponent(self) -> int:
+        """If k = j^e (j an integer) and m divides both e and n, then u = j^(e/m) * 2^(n/m)
+        satisfies u^m = k*2^n = -c: a public element of order 2m (c = +1) or m (c = -1). With E the
+        largest such e, every such element and -1 are killed by 2*gcd(E, n) (spec/protocol.md, 5.8)."""
+        if self.k == 1:
+            return 2 * self.n  # 2^n = -c: 2 itself has order 2n or n
+        E = 1
+        for e in range(31, 1, -1):
+            if gmpy2.iroot(mpz(self.k), e)[1]:
+                E = e
+                break
+        return 2 * math.gcd(E, self.n)
+
     def reduce(self, v: mpz) -> mpz:
         """Fold with k*2^n = -c (mod N); at most a few corrections for small k."""
         N, k = self.N, self.k
@@ -272,8 +288,10 @@ class Fermat(KTwoN):
 
     @property
     def known_order_exponent(self) -> int:
-        """2^(2^m) = -1, so 2 has order 2^(m+1) and <2> contains -1."""
-        return 2 * self.n
+        """2^(2^m) = -1, so 2 has order 2^(m+1) and <2> contains -1. For m >= 2 also
+        sqrt(2) = 2^(n/4) * (2^(n/2) - 1) is public, of order 2^(m+2); it generates a cyclic group
+        containing <2>, so 4n = 2^(m+2) kills every element named here."""
+        return 4 * self.n
 
     def in_known_subgroup(self, x: int) -> bool:
         x %= int(self.N)
@@ -290,16 +308,19 @@ class GenericModulus(Modulus):
     def checked(cls, N: int) -> GenericModulus:
         if N % 2 == 0 or N.bit_length() < MIN_GENERIC_BITS:
             raise UsageError(f"a generic modulus must be odd and at least {MIN_GENERIC_BITS} bits")
-        if N.bit_length() > MAX_EXPONENT:
-            raise UsageError("modulus too large")
+        if N.bit_length() > MAX_GENERIC_BITS:
+            raise UsageError(f"modulus too large: at most {MAX_GENERIC_BITS} bits")
         q = 3
         while q < GENERIC_SMALL_FACTOR_BOUND:
             if N % q == 0:
                 raise UsageError(f"modulus has the small factor {q}: it would give elements of known "
                                  "small order")
             q = int(gmpy2.next_prime(q))
-        if gmpy2.is_square(N) or any(gmpy2.iroot(mpz(N), e)[1] for e in (3, 5, 7)):
-            raise UsageError("modulus is a perfect power")
+        if gmpy2.is_power(N):
+            raise UsageError("modulus is a perfect power: its root gives away the group structure")
+        if gmpy2.is_prime(N):
+            raise UsageError("modulus is prime: its group order N-1 is public, so nothing is delayed "
+                             "and proofs are forgeable")
         return cls(N)
 
 
