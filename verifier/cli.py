@@ -596,13 +596,17 @@ def cmd_offload(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _read_text(name: str) -> str:
+    try:
+        return Path(name).read_text()
+    except OSError as exc:
+        raise UsageError(f"cannot read {name}: {exc.strerror}") from None
+
+
 def cmd_work(args: argparse.Namespace) -> int:
     from .delegate import work
 
-    try:
-        text = Path(args.task).read_text()
-    except OSError as exc:
-        raise UsageError(f"cannot read {args.task}: {exc.strerror}") from None
+    text = _read_text(args.task)
     show_bar = not args.json and sys.stderr.isatty()
     try:
         total = int(json.loads(text).get("squarings", 0))
@@ -622,11 +626,7 @@ def cmd_work(args: argparse.Namespace) -> int:
 def cmd_settle(args: argparse.Namespace) -> int:
     from .delegate import SecretStore, settle
 
-    try:
-        text = Path(args.answer).read_text()
-    except OSError as exc:
-        raise UsageError(f"cannot read {args.answer}: {exc.strerror}") from None
-    outcome = settle(text, SecretStore(Path(args.secrets)))
+    outcome = settle(_read_text(args.answer), SecretStore(Path(args.secrets)))
     ledger = _open_ledger(args.ledger)
     if ledger is not None:
         ledger.record(outcome)

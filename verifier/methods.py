@@ -91,6 +91,16 @@ class Method:
         if factors:
             raise UsageError(f"known factors only go with the cofactor-prp test, not {self.name}")
 
+    def _check_fixed_base(self, number: Modulus, kind: type, kind_text: str, base: int,
+                          factors: Sequence[int]) -> None:
+        """For tests defined on one form with one fixed starting value (Pépin, Lucas-Lehmer)."""
+        if not isinstance(number, kind):
+            raise UsageError(f"{self.name} needs {kind_text}")
+        if base != self.default_base:
+            raise UsageError(f"{self.title} starts from base {self.default_base}")
+        self._no_factors(factors)
+        self._check_size(number, self.squarings(number))
+
 
 class FermatPRP(Method):
     name, title = "fermat-prp", "Fermat PRP test"
@@ -170,12 +180,7 @@ class Pepin(Proth):
     default_base = 3
 
     def check(self, number: Modulus, base: int, factors: Sequence[int], squarings: int | None) -> None:
-        if not isinstance(number, Fermat):
-            raise UsageError(f"{self.name} needs a Fermat number 2^(2^m)+1")
-        if base != 3:
-            raise UsageError("Pépin's test uses base 3")
-        self._no_factors(factors)
-        self._check_size(number, self.squarings(number))
+        self._check_fixed_base(number, Fermat, "a Fermat number 2^(2^m)+1", base, factors)
 
     def verdict(self, number: Modulus, base: int, final: Any, factors: Sequence[int]) -> Verdict:
         prime = final == number.N - 1  # 3^((F_m-1)/2) = -1
@@ -191,12 +196,7 @@ class LucasLehmer(Method):
     default_base = 4
 
     def check(self, number: Modulus, base: int, factors: Sequence[int], squarings: int | None) -> None:
-        if not isinstance(number, Mersenne):
-            raise UsageError(f"{self.name} needs a Mersenne number 2^p-1")
-        if base != 4:
-            raise UsageError("the Lucas-Lehmer test starts from s_0 = 4 (base 4)")
-        self._no_factors(factors)
-        self._check_size(number, self.squarings(number))
+        self._check_fixed_base(number, Mersenne, "a Mersenne number 2^p-1", base, factors)
 
     def group(self, number: Modulus) -> LucasTorus:
         assert isinstance(number, Mersenne)
