@@ -52,6 +52,7 @@ def main() -> int:
         r = chainproof("prove", f"2^{p}-1", "-o", str(cert), "--key", str(key), "--depth", "8")
         say(f"  {r['result']}, residue64 {r['residue64']}: {r['squarings']:,} squarings in "
             f"{r['seconds']:.2f} s, {r['gerbicz_checks']} Gerbicz checks passed")
+        say(f"  {r['caution']}")
         say(f"  certificate {cert.name}: {r['certificate_bytes']:,} bytes")
         runs[volunteer] = (p, key, cert, r)
 
@@ -66,7 +67,19 @@ def main() -> int:
         say(f"  VERIFIED {c['number']}: {c['result']} (signer {c['signer']})")
         say(f"    she did {c['squarings']:,} of the {p:,} squarings: {c['seconds']:.3f} s against "
             f"the worker's {r['seconds']:.2f} s, {speedup:.0f}x faster")
-    say(f"  {c['caution']}")
+        say(f"    {c['caution']}")
+
+    say("\nA probable prime is not a proven one, so Ines also runs the Lucas-Lehmer test, certified:")
+    p, key = runs["ines"][0], runs["ines"][1]
+    ll = workdir / f"ines-m{p}-ll.cpc"
+    r = chainproof("prove", f"2^{p}-1", "--test", "lucas-lehmer", "-o", str(ll), "--key", str(key),
+                   "--depth", "8")
+    c = chainproof("check", str(ll), *trust)
+    if c["result"] != "prime" or not c["proved"]:
+        sys.exit(f"demo: unexpected Lucas-Lehmer verdict: {c}")
+    say(f"  VERIFIED {c['number']}: {c['result']} (Lucas-Lehmer residue {c['residue64']}); Odile checked "
+        f"it in {c['seconds']:.3f} s against Ines's {r['seconds']:.2f} s")
+    say(f"    {c['caution']}")
 
     say("\nA copy of Ines's certificate picks up one changed byte on the way:")
     ines_cert = runs["ines"][2]

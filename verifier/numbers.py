@@ -270,6 +270,13 @@ class Mersenne(KTwoN):
                 x -= N
         return x
 
+    def reduce_any(self, v: mpz) -> mpz:
+        """Reduce any 0 <= v (a few folds for v up to a small multiple of N^2)."""
+        N, p = self.N, self.n
+        while v > N:
+            v = (v & N) + (v >> p)
+        return v if v < N else v - N
+
 
 class Fermat(KTwoN):
     """F_m = 2^(2^m) + 1."""
@@ -367,8 +374,12 @@ class LucasTorus(_Exponentiation):
         return None
 
     def mul(self, x: tuple[mpz, mpz], y: tuple[mpz, mpz]) -> tuple[mpz, mpz]:
-        (a1, b1), (a2, b2), N = x, y, self.N
-        return ((a1 * a2 + 3 * b1 * b2) % N, (a1 * b2 + a2 * b1) % N)
+        """(a1 + b1 r)(a2 + b2 r), r^2 = 3, with three multiplications (Karatsuba) and folds."""
+        (a1, b1), (a2, b2) = x, y
+        aa, bb = a1 * a2, b1 * b2
+        cross = (a1 + b1) * (a2 + b2) - aa - bb  # a1*b2 + a2*b1 >= 0
+        fold = self.modulus.reduce_any
+        return (fold(aa + 3 * bb), fold(cross))
 
     def square_n(self, x: tuple[mpz, mpz], n: int) -> tuple[mpz, mpz]:
         r, N = self.modulus.reduce, self.N
