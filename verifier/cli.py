@@ -643,7 +643,7 @@ def cmd_settle(args: argparse.Namespace) -> int:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="chainproof",
-        description="Certified Fermat PRP runs: run a test under a Gerbicz check, emit a "
+        description="Certified primality-test runs: run a test under a Gerbicz check, emit a "
         "certificate (Pietrzak halving proof), and check certificates quickly.",
     )
     parser.add_argument("--version", action="version", version=f"chainproof {__version__}")

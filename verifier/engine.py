@@ -1,5 +1,5 @@
-"""The worker's run engine: a Gerbicz-checked Fermat PRP run with crash-safe state, residue capture
-on disk, and certificate output.
+"""The worker's run engine: a Gerbicz-checked squaring run (any test in methods.py) with crash-safe
+state, residue capture on disk, and certificate output.
 
 Files beside the certificate ``OUT`` while a run is in progress:
 
@@ -184,7 +184,7 @@ class Spool:
 
 
 class Run:
-    """One Fermat PRP run of ``config`` writing its certificate to ``out``.
+    """One run of ``config`` (its test, number and proof depth) writing its certificate to ``out``.
 
     ``clock`` and ``fault`` are injectable for tests; ``progress(step, total)`` is called at block
     ends; ``warn(message)`` receives recoverable problems (such as a damaged newest checkpoint).
