@@ -387,7 +387,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     claim = obj.get("claimed_result", "unreadable final residue")
     _emit(args, obj, [
         f"{path}: certificate CLAIMS (not verified; run 'chainproof check')",
-        f"  number      {cert.number}   test {cert.test}, base {cert.base}",
+        f"  number      {_short(cert.number)}   test {cert.test}, base {cert.base}",
         f"  claim       {claim}, residue64 {obj.get('claimed_residue64', '?')}",
         f"  proof       depth {cert.depth}, {cert.squarings:,} squarings, "
         f"{len(cert.checkpoints)} checkpoint hashes",
