@@ -28,7 +28,7 @@ def write_spool_by_hand(folder: Path, p: int, depth: int, base: int = 3, byte_or
     N = (1 << p) - 1
     n = (p + 7) // 8
     folder.mkdir(parents=True, exist_ok=True)
-    manifest = {"format": "chainproof-spool", "version": 1, "number": f"2^{p}-1", "base": base,
+    manifest = {"format": "chainproof-spool", "version": 1, "number": f"2^{p}-1", "test": "fermat-prp", "base": base,
                 "squarings": p, "depth": depth, "byte_order": byte_order, "residue_bytes": n}
     (folder / "manifest.json").write_text(json.dumps(manifest))
     h, s = p % (1 << depth), p >> depth
@@ -85,9 +85,9 @@ def test_assemble_errors_name_the_file(tmp_path: Path, capsys: pytest.CaptureFix
     cases["corrupt"] = (folder, f"{f.name}: checksum mismatch")
     step = sorted(files)[1]
     folder, _ = fresh("range", values={step: N + 3})
-    cases["range"] = (folder, f"step-{step}.res: residue outside")
+    cases["range"] = (folder, f"step-{step}.res: residue is outside")
     folder, _ = fresh("zero", values={step: 0})
-    cases["zero"] = (folder, f"step-{step}.res: residue outside")
+    cases["zero"] = (folder, f"step-{step}.res: residue is outside")
     folder, files = fresh("extra")
     (folder / "step-5.res").write_bytes(b"x")
     cases["extra"] = (folder, "step-5.res: step 5 is not one the proof needs")
@@ -109,7 +109,7 @@ def test_assemble_errors_name_the_file(tmp_path: Path, capsys: pytest.CaptureFix
 
 def test_lying_manifests(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     for label, change, reason in [
-        ("T", {"squarings": 520}, "squarings 520 is not p"),
+        ("T", {"squarings": 520}, "squarings 520, but fermat-prp of 2^521-1 needs 521"),
         ("depth", {"depth": 11}, "depth 11 impossible"),
         ("bytes", {"residue_bytes": 65}, "residue_bytes 65"),
         ("order", {"byte_order": "middle"}, "byte_order"),
@@ -189,7 +189,7 @@ def test_recorder_refuses_bad_feeds(tmp_path: Path) -> None:
         (want - 1, good, "not asked for"),
         (want, -good, "negative"),
         (want, good + N, "not reduced"),
-        (want, 0, "zero or not a unit"),
+        (want, 0, "outside \\[1, N-1\\]"),
         (want, good.to_bytes(66, "little")[:-1], "65 bytes"),
         (want, True, "must be int"),
         (want, 3.0, "must be int"),
@@ -279,3 +279,64 @@ def test_example_foreign_loop_runs(tmp_path: Path) -> None:
     assert result.number == "2^2203-1" and result.result == "probable-prime"
     with pytest.raises(Rejected):
         verify(decode_unverified((tmp_path / "f.cpc").read_bytes()), VerificationPolicy())
+
+
+def test_lucas_lehmer_spool_by_hand(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A Lucas-Lehmer spool written without chainproof: elements a + b sqrt 3 of Z_N[sqrt 3],
+    squared by the ring's definition (a, b)^2 = (a^2 + 3b^2, 2ab), stored as a then b."""
+    p, depth = 607, 4
+    N, n = (1 << p) - 1, (p + 7) // 8
+    T = p - 2
+    folder = tmp_path / "ll"
+    folder.mkdir()
+    manifest = {"format": "chainproof-spool", "version": 1, "number": f"2^{p}-1", "test": "lucas-lehmer",
+                "base": 4, "squarings": T, "depth": depth, "byte_order": "little", "residue_bytes": 2 * n}
+    (folder / "manifest.json").write_text(json.dumps(manifest))
+    h, s = T % (1 << depth), T >> depth
+    a, b, k = 2, 1, 0  # 2 + sqrt 3: s_0 = 2a = 4
+    for j in range(1, (1 << depth) + 1):
+        while k < h + j * s:
+            a, b, k = (a * a + 3 * b * b) % N, (2 * a * b) % N, k + 1
+        data = a.to_bytes(n, "little") + b.to_bytes(n, "little")
+        (folder / f"step-{k}.res").write_bytes(data + hashlib.sha256(data).digest())
+    assert (2 * a) % N == 0  # s_(p-2) = 0: 2^607-1 is prime (OEIS A000043, from memory)
+    code, obj = run_assemble(capsys, folder, tmp_path / "ll.cpc")
+    assert code == 0 and obj["result"] == "prime"
+    result = verify(decode_unverified((tmp_path / "ll.cpc").read_bytes()), ACCEPT_UNSIGNED)
+    assert result.test == "lucas-lehmer" and result.proved
+
+
+def test_recorder_for_proth_and_torus(tmp_path: Path) -> None:
+    num = parse_number("3*2^189+1")  # a prime (OEIS A002253, from memory; sympy agrees below)
+    import sympy
+
+    assert sympy.isprime(3 * 2**189 + 1)
+    N = int(num.N)
+    rec = Recorder.create(tmp_path / "proth", num, base=5, depth=3, test="proth", check_every=2)
+    step, x = rec.resume_point()
+    x = int(x)
+    while rec.next_step is not None:
+        target = rec.next_step
+        x = pow(x, 1 << (target - step), N)  # the host's arithmetic: built-in pow
+        step = target
+        rec.feed(step, x)
+    data = rec.finish(tmp_path / "proth.cpc")
+    assert verify(decode_unverified(data), ACCEPT_UNSIGNED).result == "prime"
+
+    mers = parse_number("2^521-1")
+    M = int(mers.N)
+    rec = Recorder.create(tmp_path / "ll", mers, depth=3, test="lucas-lehmer")
+    step, (a, b) = rec.resume_point()
+    a, b = int(a), int(b)
+    with pytest.raises(SpoolError, match="coordinate"):
+        rec.feed(rec.next_step, 5)  # type: ignore[arg-type]
+    while rec.next_step is not None:
+        target = rec.next_step
+        for _ in range(target - step):
+            a, b = (a * a + 3 * b * b) % M, (2 * a * b) % M
+        step = target
+        rec.feed(step, (a, b))
+    assert verify(decode_unverified(rec.finish(tmp_path / "ll.cpc")), ACCEPT_UNSIGNED).result == "prime"
+    with pytest.raises(SpoolError, match="norm"):
+        Recorder.create(tmp_path / "ll2", mers, depth=3, test="lucas-lehmer").feed(
+            rec.plan.step(1), (5, 7))

@@ -19,7 +19,7 @@ from . import __version__
 from .codec import UnverifiedCertificate, decode_unverified
 from .engine import Run, RunConfig
 from .errors import Rejected, RunFailed, StorageError, UsageError
-from .methods import METHODS, FermatPRP, Method, Proth, default_method, method
+from .methods import METHODS, Method, Proth, default_method, method
 from .numbers import NUMBER_SYNTAX, Fermat, KTwoN, Mersenne, Modulus, parse_modulus, parse_number
 from .signing import (
     fingerprint,
@@ -223,19 +223,20 @@ def cmd_assemble(args: argparse.Namespace) -> int:
         _emit(args, {"assembled": False, "spool": args.spool, "reason": str(exc)},
               [f"NOT ASSEMBLED  {exc}"])
         return EXIT_REJECTED
-    cert = decode_unverified(data)
-    number = parse_number(cert.number)
-    v = FermatPRP().verdict(number, cert.base, number.from_bytes(cert.final), ())
+    cert = decode_unverified(data)  # assemble has verified it already
+    number = parse_modulus(cert.number) if cert.number.startswith("0x") else parse_number(cert.number)
+    test = method(cert.test)
+    v = test.verdict(number, cert.base, test.group(number).from_bytes(cert.final), ())
     result, residue64 = v.result, v.residue64
     signer = fingerprint(cert.signer) if cert.signer else None
     obj = {"assembled": True, "certificate": str(out), "certificate_bytes": len(data),
            "number": cert.number, "depth": cert.depth, "result": result, "residue64": residue64,
-           "signer": signer, "caution": PRP_CAUTION}
+           "signer": signer, "test": test.name, "proved": v.proved, "caution": v.caution}
     _emit(args, obj, [
-        f"{cert.number}: {result} (base {cert.base}), residue64 {residue64}",
+        f"{_short(cert.number)}: {result} ({test.title}, base {cert.base}), residue64 {residue64}",
         f"  certificate  {out} ({len(data):,} bytes, depth {cert.depth}, "
         f"{'signed ' + signer if signer else 'UNSIGNED'})",
-        PRP_CAUTION,
+        v.caution,
     ])
     return EXIT_OK
 

@@ -6,12 +6,14 @@ either by :class:`Recorder` from Python or directly by a program in any language
 :func:`assemble` turns a complete folder into a certificate::
 
     SPOOL/manifest.json      {"format": "chainproof-spool", "version": 1, "number": "2^p-1",
-                              "base": 3, "squarings": T, "depth": d, "byte_order": "little",
-                              "residue_bytes": n}
-    SPOOL/step-<k>.res       the residue at step k (n bytes, that byte order) || SHA-256 of those n bytes
+                              "test": "fermat-prp", "base": 3, "squarings": T, "depth": d,
+                              "byte_order": "little", "residue_bytes": n}
+    SPOOL/step-<k>.res       the element x_k = x_0^(2^k) (n bytes, that byte order; a torus element
+                             a + b sqrt 3 as a then b) || SHA-256 of those n bytes
 
+x_0 is the test's chain start (methods.py: base^k for k*2^n+-1, 2 + sqrt 3 for Lucas-Lehmer, ...).
 The wanted steps are k = h + j*s for j = 1..2^d, with h = T mod 2^d and s = T div 2^d; the last is
-k = T, the final residue. Nothing in a spool is trusted: every file is checked, and the certificate
+k = T, the final element. Nothing in a spool is trusted: every file is checked, and the certificate
 is verified before it is written, so a spool can never yield a certificate that claims more than
 was computed.
 """
@@ -34,10 +36,8 @@ from .certify import SelfCheckFailed, build_certificate
 from .codec import MAX_DEPTH
 from .engine import atomic_write
 from .errors import StorageError, UsageError
-from .methods import FermatPRP
-from .numbers import Mersenne, parse_number
-
-FERMAT = FermatPRP()
+from .methods import Method, method
+from .numbers import Modulus, parse_modulus, parse_number
 
 SPOOL_FORMAT = "chainproof-spool"
 SPOOL_VERSION = 1
@@ -54,27 +54,55 @@ class SpoolError(UsageError):
 class SpoolPlan:
     """What a spool holds: the manifest's content, validated."""
 
-    number: Mersenne
+    number: Modulus
     base: int
     squarings: int
     depth: int
     byte_order: str = "little"
+    test: str = "fermat-prp"
 
     def __post_init__(self) -> None:
         num = self.number
-        if not isinstance(num, Mersenne):
-            raise SpoolError(f"manifest: spool folders carry 2^p-1 Fermat PRP runs in this version, "
-                             f"not {num.text}")
-        if self.squarings != num.p:
-            raise SpoolError(f"manifest: squarings {self.squarings} is not p = {num.p} for {num.text}")
+        if self.test == "cofactor-prp":
+            raise SpoolError("manifest: write a fermat-prp spool; the cofactor test reuses its "
+                             "certificate's run (prove --known-factor)")
+        try:
+            m = method(self.test)
+            m.check(num, self.base, (), self.squarings)
+            needed = m.squarings(num, self.squarings)
+        except UsageError as exc:
+            raise SpoolError(f"manifest: {exc}") from None
+        if self.squarings != needed:
+            raise SpoolError(f"manifest: squarings {self.squarings}, but {self.test} of {num.text} "
+                             f"needs {needed}")
         if not 1 <= self.depth <= MAX_DEPTH or (1 << self.depth) > self.squarings:
             raise SpoolError(f"manifest: depth {self.depth} impossible for {self.squarings} squarings")
         if self.byte_order not in ("little", "big"):
             raise SpoolError(f"manifest: byte_order must be 'little' or 'big', not {self.byte_order!r}")
-        try:
-            FERMAT.check(num, self.base, (), None)
-        except UsageError as exc:
-            raise SpoolError(f"manifest: {exc}") from None
+
+    @property
+    def method(self) -> Method:
+        return method(self.test)
+
+    @property
+    def group(self) -> Any:
+        return self.method.group(self.number)
+
+    def start(self) -> Any:
+        """x_h: the chain start squared h = T mod 2^d times (the residue before capture 1)."""
+        return self.group.square_n(self.method.start(self.number, self.base), self.squarings % self.count)
+
+    def encode(self, x: Any) -> bytes:
+        """An element in the spool's byte order (a torus element as a then b)."""
+        parts = x if isinstance(x, tuple) else (x,)
+        width = self.number.nbytes
+        return b"".join(int(v).to_bytes(width, self.byte_order) for v in parts)  # type: ignore[arg-type]
+
+    def decode(self, data: bytes) -> Any:
+        width = self.number.nbytes
+        vals = [mpz(int.from_bytes(data[i:i + width], self.byte_order))  # type: ignore[arg-type]
+                for i in range(0, len(data), width)]
+        return vals[0] if len(vals) == 1 else tuple(vals)
 
     @property
     def count(self) -> int:
@@ -92,11 +120,12 @@ class SpoolPlan:
             "format": SPOOL_FORMAT,
             "version": SPOOL_VERSION,
             "number": self.number.text,
+            "test": self.test,
             "base": self.base,
             "squarings": self.squarings,
             "depth": self.depth,
             "byte_order": self.byte_order,
-            "residue_bytes": self.number.nbytes,
+            "residue_bytes": self.group.element_bytes,
         }
 
     @classmethod
@@ -105,26 +134,25 @@ class SpoolPlan:
             raise SpoolError(f"manifest: not a {SPOOL_FORMAT} manifest")
         if obj.get("version") != SPOOL_VERSION:
             raise SpoolError(f"manifest: unknown version {obj.get('version')!r}")
-        expected = {"format", "version", "number", "base", "squarings", "depth", "byte_order",
+        expected = {"format", "version", "number", "test", "base", "squarings", "depth", "byte_order",
                     "residue_bytes"}
         if set(obj) != expected:
             raise SpoolError(f"manifest: fields must be exactly {sorted(expected)}")
         for key in ("base", "squarings", "depth", "residue_bytes"):
             if type(obj[key]) is not int:
                 raise SpoolError(f"manifest: {key} must be an integer")
-        if type(obj["number"]) is not str:
-            raise SpoolError("manifest: number must be a string")
+        if type(obj["number"]) is not str or type(obj["test"]) is not str:
+            raise SpoolError("manifest: number and test must be strings")
         try:
-            number = parse_number(obj["number"])
+            number = parse_modulus(obj["number"]) if obj["number"].startswith("0x") else parse_number(obj["number"])
         except UsageError as exc:
             raise SpoolError(f"manifest: {exc}") from None
-        if not isinstance(number, Mersenne):
-            raise SpoolError(f"manifest: spool folders carry 2^p-1 Fermat PRP runs in this version, "
-                             f"not {number.text}")
-        plan = cls(number, obj["base"], obj["squarings"], obj["depth"], obj["byte_order"])
-        if obj["residue_bytes"] != number.nbytes:
-            raise SpoolError(f"manifest: residue_bytes {obj['residue_bytes']} but {number.text} needs "
-                             f"{number.nbytes}")
+        if number.text != obj["number"]:
+            raise SpoolError(f"manifest: number not in canonical spelling (expected {number.text!r})")
+        plan = cls(number, obj["base"], obj["squarings"], obj["depth"], obj["byte_order"], obj["test"])
+        if obj["residue_bytes"] != plan.group.element_bytes:
+            raise SpoolError(f"manifest: residue_bytes {obj['residue_bytes']} but {obj['test']} of "
+                             f"{number.text} needs {plan.group.element_bytes}")
         return plan
 
 
@@ -132,8 +160,8 @@ def step_file(folder: Path, step: int) -> Path:
     return folder / f"step-{step}.res"
 
 
-def encode_residue(plan: SpoolPlan, x: mpz) -> bytes:
-    data = int(x).to_bytes(plan.number.nbytes, plan.byte_order)  # type: ignore[arg-type]
+def encode_residue(plan: SpoolPlan, x: Any) -> bytes:
+    data = plan.encode(x)
     return data + hashlib.sha256(data).digest()
 
 
@@ -173,9 +201,9 @@ class SpoolFolder:
                              "are present)")
         return len(found)
 
-    def read(self, j: int) -> tuple[mpz, bytes]:
-        """Capture j as (residue, SHA-256 of its canonical little-endian encoding)."""
-        plan, num = self.plan, self.plan.number
+    def read(self, j: int) -> tuple[Any, bytes]:
+        """Capture j as (element, SHA-256 of its canonical little-endian encoding)."""
+        plan, group = self.plan, self.plan.group
         path = step_file(self.folder, plan.step(j))
         try:
             raw = path.read_bytes()
@@ -183,15 +211,16 @@ class SpoolFolder:
             raise SpoolError(f"{path}: missing") from None
         except OSError as exc:
             raise SpoolError(f"{path}: unreadable ({exc.strerror})") from None
-        if len(raw) != num.nbytes + DIGEST:
-            raise SpoolError(f"{path}: {len(raw)} bytes, expected {num.nbytes + DIGEST}")
+        if len(raw) != group.element_bytes + DIGEST:
+            raise SpoolError(f"{path}: {len(raw)} bytes, expected {group.element_bytes + DIGEST}")
         data, digest = raw[:-DIGEST], raw[-DIGEST:]
         if hashlib.sha256(data).digest() != digest:
             raise SpoolError(f"{path}: checksum mismatch")
-        x = mpz(int.from_bytes(data, plan.byte_order))  # type: ignore[arg-type]
-        if not num.is_unit(x):
-            raise SpoolError(f"{path}: residue outside [1, N-1] or not a unit")
-        return x, hashlib.sha256(num.to_bytes(x)).digest()
+        x = plan.decode(data)
+        problem = group.check_element(x)
+        if problem is not None:
+            raise SpoolError(f"{path}: residue {problem}")
+        return x, hashlib.sha256(group.to_bytes(x)).digest()
 
 
 def assemble(folder: Path, out: Path, key: Ed25519PrivateKey | None = None) -> bytes:
@@ -208,11 +237,11 @@ def assemble(folder: Path, out: Path, key: Ed25519PrivateKey | None = None) -> b
     digests = [spool.read(j)[1] for j in range(1, plan.count + 1)]
     final = spool.read(plan.count)[0]
     try:
-        data = build_certificate(FERMAT, plan.number, plan.base, plan.squarings, plan.depth, final,
+        data = build_certificate(plan.method, plan.number, plan.base, plan.squarings, plan.depth, final,
                                  digests, lambda j: spool.read(j)[0], key)
     except SelfCheckFailed:
         raise SpoolError(
-            f"{folder}: the residues do not form the squaring chain base^(2^k) mod N that the "
+            f"{folder}: the residues do not form the squaring chain x_0^(2^k) that the "
             "manifest describes (wrong values, another number's spool, or a faulty host)"
         ) from None
     try:
@@ -252,8 +281,8 @@ class Recorder:
             raise UsageError("check_every must be >= 0")
         self.spool, self.plan, self.check_every = spool, spool.plan, check_every
         self.fed = fed
-        num = self.plan.number
-        self._start = num.square_n(mpz(self.plan.base), self.plan.squarings % self.plan.count)
+        num = self.group = self.plan.group
+        self._start = self.plan.start()
         self._d = self._start  # running product u_0 * u_1 * ... * u_fed
         for j in range(1, fed + 1):
             self._d = num.mul(self._d, spool.read(j)[0])
@@ -262,10 +291,14 @@ class Recorder:
 
     # -- construction ---------------------------------------------------------------------------
     @classmethod
-    def create(cls, folder: Path, number: Mersenne, *, base: int = 3, depth: int = 8,
-               check_every: int = 0, byte_order: str = "little") -> Recorder:
-        """Start a new spool in ``folder`` (created if needed; must not hold another spool)."""
-        plan = SpoolPlan(number, base, number.p, depth, byte_order)
+    def create(cls, folder: Path, number: Modulus, *, base: int | None = None, depth: int = 8,
+               check_every: int = 0, byte_order: str = "little", test: str = "fermat-prp",
+               squarings: int | None = None) -> Recorder:
+        """Start a new spool in ``folder`` (created if needed; must not hold another spool).
+        ``base`` defaults to the test's usual one; ``squarings`` is only for the delay test."""
+        m = method(test)
+        plan = SpoolPlan(number, m.default_base if base is None else base,
+                         squarings if squarings is not None else m.squarings(number), depth, byte_order, test)
         folder.mkdir(parents=True, exist_ok=True)
         manifest = folder / MANIFEST
         if manifest.exists():
@@ -299,31 +332,39 @@ class Recorder:
         """Every step still wanted, in order."""
         return [self.plan.step(j) for j in range(self.fed + 1, self.plan.count + 1)]
 
-    def resume_point(self) -> tuple[int, mpz]:
-        """(step, residue) to restart the host loop from: the last capture on disk (step h with
-        base^(2^h) if there is none)."""
+    def resume_point(self) -> tuple[int, Any]:
+        """(step, element) to restart the host loop from: the last capture on disk (step h with
+        x_0^(2^h) if there is none)."""
         if self.fed == 0:
             return self.plan.squarings % self.plan.count, self._start
         return self.plan.step(self.fed), self.spool.read(self.fed)[0]
 
-    def _coerce(self, step: int, residue: int | mpz | bytes) -> mpz:
-        num = self.plan.number
+    def _coerce(self, step: int, residue: Any) -> Any:
+        """bytes (the spool's encoding), or int / gmpy2.mpz, or for the torus a pair of them."""
+        num, group = self.plan.number, self.group
         if isinstance(residue, bytes | bytearray):
-            if len(residue) != num.nbytes:
-                raise SpoolError(f"step {step}: residue of {len(residue)} bytes, expected {num.nbytes}")
-            return mpz(int.from_bytes(residue, self.plan.byte_order))  # type: ignore[arg-type]
-        if isinstance(residue, bool) or not isinstance(residue, int | type(mpz(0))):
-            raise SpoolError(f"step {step}: residue must be int, gmpy2.mpz or bytes, not "
-                             f"{type(residue).__name__}")
-        x = mpz(residue)
-        if x < 0:
-            raise SpoolError(f"step {step}: negative residue")
-        if x >= num.N:
-            raise SpoolError(f"step {step}: residue not reduced (>= N)")
-        return x
+            if len(residue) != group.element_bytes:
+                raise SpoolError(f"step {step}: residue of {len(residue)} bytes, expected "
+                                 f"{group.element_bytes}")
+            return self.plan.decode(bytes(residue))
+        parts = residue if isinstance(residue, tuple) else (residue,)
+        if len(parts) != group.element_bytes // num.nbytes:
+            raise SpoolError(f"step {step}: expected {group.element_bytes // num.nbytes} coordinate(s)")
+        out = []
+        for v in parts:
+            if isinstance(v, bool) or not isinstance(v, int | type(mpz(0))):
+                raise SpoolError(f"step {step}: residue must be int, gmpy2.mpz or bytes, not "
+                                 f"{type(v).__name__}")
+            if v < 0:
+                raise SpoolError(f"step {step}: negative residue")
+            if v >= num.N:
+                raise SpoolError(f"step {step}: residue not reduced (>= N)")
+            out.append(mpz(v))
+        return out[0] if len(out) == 1 else tuple(out)
 
-    def feed(self, step: int, residue: int | mpz | bytes) -> None:
-        """Accept the residue base^(2^step) mod N for the step ``next_step`` names.
+    def feed(self, step: int, residue: Any) -> None:
+        """Accept the element x_0^(2^step) for the step ``next_step`` names (int, gmpy2.mpz or
+        bytes; for the Lucas-Lehmer torus a pair (a, b) or 2*nbytes bytes).
 
         Raises SpoolError for a step not asked for or out of order, a malformed or out-of-range
         residue, or (with ``check_every``) residues inconsistent with the earlier ones.
@@ -334,9 +375,10 @@ class Recorder:
         if step != want:
             raise SpoolError(f"step {step} was not asked for: the next wanted step is {want}")
         x = self._coerce(step, residue)
-        num = self.plan.number
-        if not num.is_unit(x):
-            raise SpoolError(f"step {step}: residue is zero or not a unit")
+        num = self.group
+        problem = num.check_element(x)
+        if problem is not None:
+            raise SpoolError(f"step {step}: residue {problem}")
         path = step_file(self.spool.folder, step)
         try:
             atomic_write(path, encode_residue(self.plan, x))
@@ -348,8 +390,8 @@ class Recorder:
         if self.check_every and (self.fed % self.check_every == 0 or self.fed == self.plan.count):
             self._check(d_prev)
 
-    def _check(self, d_prev: mpz) -> None:
-        num, s = self.plan.number, self.plan.squarings >> self.plan.depth
+    def _check(self, d_prev: Any) -> None:
+        num, s = self.group, self.plan.squarings >> self.plan.depth
         if num.mul(self._start, num.square_n(d_prev, s)) == self._d:
             self._verified = self.fed
             return
