@@ -48,6 +48,12 @@ def _hex64(x: int) -> str:
     return f"{int(x) & (2**64 - 1):016x}"
 
 
+def _k_power(number: Modulus, base: int) -> mpz:
+    """x_0 = a^k for N = k*2^n +- 1: then n squarings give a^(k*2^n) = a^(N -+ 1)."""
+    assert isinstance(number, KTwoN)
+    return number.pow(mpz(base), number.k)
+
+
 class Method:
     name = ""
     title = ""
@@ -113,8 +119,7 @@ class FermatPRP(Method):
         self._check_size(number, self.squarings(number))
 
     def start(self, number: Modulus, base: int) -> mpz:
-        assert isinstance(number, KTwoN)
-        return number.pow(mpz(base), number.k)
+        return _k_power(number, base)
 
     def squarings(self, number: Modulus, given: int | None = None) -> int:
         assert isinstance(number, KTwoN)
@@ -149,8 +154,7 @@ class Proth(Method):
         self._check_size(number, self.squarings(number))
 
     def start(self, number: Modulus, base: int) -> mpz:
-        assert isinstance(number, KTwoN)
-        return number.pow(mpz(base), number.k)
+        return _k_power(number, base)
 
     def squarings(self, number: Modulus, given: int | None = None) -> int:
         assert isinstance(number, KTwoN)
