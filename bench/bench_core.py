@@ -98,36 +98,16 @@ def child_main(argv: list[str]) -> int:
 
 
 def _child_full_run(p: int, depth: int, out: Path) -> dict[str, Any]:
-    from verifier import certify, engine
+    from phase_timer import phase_timer
+
     from verifier.engine import Run, RunConfig
     from verifier.numbers import Mersenne
 
-    spent = {"chain": 0.0, "prove": 0.0}
-    base_chain = engine.GerbiczChain
-    base_prove = certify.prove
-
-    class TimedChain(base_chain):  # type: ignore[misc, valid-type]
-        def run(self, state=None):  # type: ignore[no-untyped-def]
-            t = time.perf_counter()
-            try:
-                return super().run(state)
-            finally:
-                spent["chain"] += time.perf_counter() - t
-
-    def timed_prove(*args, **kwargs):  # type: ignore[no-untyped-def]
-        t = time.perf_counter()
-        try:
-            return base_prove(*args, **kwargs)
-        finally:
-            spent["prove"] += time.perf_counter() - t
-
-    engine.GerbiczChain = TimedChain  # type: ignore[misc]
-    certify.prove = timed_prove
-
     config = RunConfig(Mersenne.from_exponent(p), depth=depth)
-    t0 = time.perf_counter()
-    report = Run(config, out).run()
-    seconds = time.perf_counter() - t0
+    with phase_timer() as spent:
+        t0 = time.perf_counter()
+        report = Run(config, out).run()
+        seconds = time.perf_counter() - t0
     return {
         "seconds": seconds,
         "chain_seconds": spent["chain"],

@@ -15,42 +15,22 @@ import sys
 import tempfile
 import time
 from pathlib import Path
-from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from verifier import certify, engine  # noqa: E402
+from phase_timer import phase_timer  # noqa: E402
+
 from verifier.engine import Run, RunConfig  # noqa: E402
 from verifier.numbers import Mersenne  # noqa: E402
 from verifier.planner import plan  # noqa: E402
 
 
 def timed_run(number: Mersenne, depth: int, tmp: Path) -> dict[str, float]:
-    spent = {"chain": 0.0, "prove": 0.0}
-    base_chain, base_prove = engine.GerbiczChain, certify.prove
-
-    class TimedChain(base_chain):  # type: ignore[misc, valid-type]
-        def run(self, state=None):  # type: ignore[no-untyped-def]
-            t = time.perf_counter()
-            try:
-                return super().run(state)
-            finally:
-                spent["chain"] += time.perf_counter() - t
-
-    def timed_prove(*args: Any, **kwargs: Any) -> Any:
-        t = time.perf_counter()
-        try:
-            return base_prove(*args, **kwargs)
-        finally:
-            spent["prove"] += time.perf_counter() - t
-
-    engine.GerbiczChain, certify.prove = TimedChain, timed_prove  # type: ignore[misc]
-    try:
+    with phase_timer() as spent:
         t0 = time.perf_counter()
         Run(RunConfig(number, depth=depth), tmp / f"m{number.p}-{depth}.cpc").run()
         total = time.perf_counter() - t0
-    finally:
-        engine.GerbiczChain, certify.prove = base_chain, base_prove  # type: ignore[misc]
     return {"total": total, **spent, "rest": total - spent["chain"] - spent["prove"]}
 
 

@@ -11,6 +11,7 @@ import pytest
 from conftest import det_key, make_certificate
 from hypothesis import given
 from hypothesis import strategies as st
+from malformed import accepted
 
 from verifier import Rejected, VerificationPolicy, decode_unverified, encode, verify
 from verifier.codec import HEADER, MAGIC
@@ -26,14 +27,6 @@ def small(tmp_path_factory: pytest.TempPathFactory) -> dict[str, bytes]:
     signed, _ = make_certificate(tmp, "2^61-1", depth=3, key=det_key(), name="s.cpc")
     unsigned, _ = make_certificate(tmp, "2^61-1", depth=3, name="u.cpc")
     return {"signed": signed, "unsigned": unsigned}
-
-
-def accepted(data: bytes, policy: VerificationPolicy) -> bool:
-    try:
-        verify(decode_unverified(data), policy)
-    except Rejected:
-        return False
-    return True
 
 
 def test_honest_certificates_verify(small: dict[str, bytes]) -> None:

@@ -183,6 +183,8 @@ def test_recorder_refuses_bad_feeds(tmp_path: Path) -> None:
     rec = Recorder.create(tmp_path / "sp", num, depth=4)
     want = rec.next_step
     assert want is not None
+    h, s = 521 % 16, 521 >> 4
+    assert rec.wanted_steps == [h + j * s for j in range(1, 17)] and want == h + s
     good = pow(3, 1 << want, N)
     for step, value, reason in [
         (want + 1, good, "not asked for"),

@@ -168,17 +168,21 @@ def leaf_mutations(
             yield f"mu[{i}] from other", dataclasses.replace(cert, mu=cert.mu[:i] + (other.mu[i],) + cert.mu[i + 1:])
 
 
+def accepted(data: bytes, policy: VerificationPolicy) -> bool:
+    try:
+        verify(decode_unverified(data), policy)
+    except Rejected:
+        return False
+    return True
+
+
 def sweep(
     cert: UnverifiedCertificate, other: UnverifiedCertificate, policy: VerificationPolicy, resign: Signer | None
 ) -> tuple[int, list[str]]:
     """Apply every leaf mutation; return (how many tried, labels of those accepted)."""
-    tried, accepted = 0, []
+    tried, passed = 0, []
     for label, changed in leaf_mutations(cert, other):
         tried += 1
-        data = resign(changed) if resign is not None else encode(changed)
-        try:
-            verify(decode_unverified(data), policy)
-        except Rejected:
-            continue
-        accepted.append(label)
-    return tried, accepted
+        if accepted(resign(changed) if resign is not None else encode(changed), policy):
+            passed.append(label)
+    return tried, passed

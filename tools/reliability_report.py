@@ -24,10 +24,9 @@ sys.path.insert(0, str(ROOT / "tools"))
 sys.path.insert(0, str(ROOT))
 
 from adversary import forge  # noqa: E402
-from malformed import sweep  # noqa: E402
+from malformed import accepted, sweep  # noqa: E402
 
 from verifier import (  # noqa: E402
-    Rejected,
     Run,
     RunConfig,
     RunFailed,
@@ -35,7 +34,6 @@ from verifier import (  # noqa: E402
     decode_unverified,
     encode,
     parse_number,
-    verify,
 )
 from verifier.numbers import Mersenne  # noqa: E402
 from verifier.signing import load_public_key, raw_public  # noqa: E402
@@ -53,14 +51,6 @@ def resign(cert):  # type: ignore[no-untyped-def]
     k = key()
     cert = dataclasses.replace(cert, signer=raw_public(k), signature=None)
     return encode(dataclasses.replace(cert, signature=k.sign(cert.signed_bytes())))
-
-
-def accepted(data: bytes, policy: VerificationPolicy) -> bool:
-    try:
-        verify(decode_unverified(data), policy)
-    except Rejected:
-        return False
-    return True
 
 
 def run(tmp: Path, number: str, depth: int, base: int = 3, signed: bool = True, **kw):  # type: ignore[no-untyped-def]

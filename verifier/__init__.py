@@ -10,8 +10,9 @@ Library entry points:
 from .codec import UnverifiedCertificate, decode_unverified, encode
 from .engine import Run, RunConfig, RunReport
 from .errors import ChainproofError, Rejected, RunFailed, StorageError, UsageError
+from .methods import PRP_CAUTION
 from .numbers import Mersenne, parse_number
-from .verify import PRP_CAUTION, VerificationPolicy, VerifiedResult, verify
+from .verify import VerificationPolicy, VerifiedResult, verify
 
 __version__ = "0.1.0"
 

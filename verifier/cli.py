@@ -19,7 +19,7 @@ from . import __version__
 from .codec import UnverifiedCertificate, decode_unverified
 from .engine import Run, RunConfig
 from .errors import Rejected, RunFailed, StorageError, UsageError
-from .methods import METHODS, Method, Proth, default_method, method
+from .methods import METHODS, PRP_CAUTION, Method, Proth, default_method, method
 from .numbers import NUMBER_SYNTAX, Fermat, KTwoN, Mersenne, Modulus, parse_modulus, parse_number
 from .signing import (
     fingerprint,
@@ -28,7 +28,7 @@ from .signing import (
     load_public_key,
     raw_public,
 )
-from .verify import PRP_CAUTION, VerificationPolicy, verify
+from .verify import VerificationPolicy, verify
 
 EXTENSION = ".cpc"
 EXIT_OK, EXIT_REJECTED, EXIT_USAGE = 0, 1, 2
@@ -368,7 +368,7 @@ def _inspect_fields(cert: UnverifiedCertificate) -> dict[str, Any]:
         if len(cert.final) == group.element_bytes and group.check_element(final) is None:
             v = test.verdict(number, cert.base, final, factors)
             obj["claimed_result"], obj["claimed_residue64"] = v.result, v.residue64
-            obj["subject"] = v.subject
+            obj["subject"], obj["caution"] = v.subject, v.caution
     except (UsageError, ZeroDivisionError, ValueError):
         pass
     return obj
@@ -394,7 +394,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"{len(cert.checkpoints)} checkpoint hashes",
         f"  signer      {obj['signer'] or 'none (unsigned)'}",
         f"  size        {len(data):,} bytes",
-        PRP_CAUTION,
+        obj.get("caution", PRP_CAUTION),
     ])
     return EXIT_OK
 

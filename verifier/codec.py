@@ -83,9 +83,6 @@ class UnverifiedCertificate:
         itself (the signer's public key is included)."""
         return HEADER + _pack(self.body(with_signature=False))
 
-    def with_signature(self, signer: bytes, signature: bytes) -> UnverifiedCertificate:
-        return replace(self, signer=signer, signature=signature)
-
     def unsigned(self) -> UnverifiedCertificate:
         return replace(self, signer=None, signature=None)
 

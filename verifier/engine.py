@@ -150,12 +150,12 @@ class Spool:
     """Fixed-size records (residue || SHA-256(residue)) for u_1..u_n, record j at (j-1)*size."""
 
     def __init__(self, path: Path, group: Any, fresh: bool) -> None:
-        self.path, self.number = path, group
+        self.path, self.group = path, group
         self.size = group.element_bytes + DIGEST
         self.fh: BinaryIO = open(path, "w+b" if fresh else "r+b")  # noqa: SIM115 closed in close()
 
     def write(self, j: int, x: Any) -> None:
-        data = self.number.to_bytes(x)
+        data = self.group.to_bytes(x)
         self.fh.seek((j - 1) * self.size)
         self.fh.write(data + hashlib.sha256(data).digest())
 
@@ -168,7 +168,7 @@ class Spool:
         return data, digest
 
     def read(self, j: int) -> Any:
-        return self.number.from_bytes(self.read_record(j)[0])
+        return self.group.from_bytes(self.read_record(j)[0])
 
     def keep(self, count: int) -> None:
         """Drop every record after the first ``count``."""

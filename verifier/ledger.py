@@ -14,7 +14,6 @@ checkpoint where two certificates part.
 from __future__ import annotations
 
 import datetime as dt
-import json
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -227,6 +226,3 @@ def compare_checkpoints(a: Sequence[bytes], b: Sequence[bytes], squarings: int, 
             return Divergence(j - 1, j, h + (j - 1) * s, h + j * s, s)
     return Divergence(len(a), None, squarings, None, s)
 
-
-def dumps_rows(rows: Sequence[dict[str, Any]]) -> str:
-    return "\n".join(json.dumps(r, sort_keys=True) for r in export_rows(rows))

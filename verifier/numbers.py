@@ -141,9 +141,6 @@ class Modulus(_Exponentiation):
             return "is not a unit modulo N"
         return None
 
-    def is_unit(self, x: mpz) -> bool:
-        return self.check_element(x) is None
-
     # -- arithmetic -----------------------------------------------------------------------------
     @property
     def identity(self) -> mpz:

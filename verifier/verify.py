@@ -15,7 +15,7 @@ from typing import Any
 from .codec import MAX_CERTIFICATE_BYTES, MAX_DEPTH, UnverifiedCertificate
 from .errors import Rejected, UsageError, VerifyTimeout
 from .gerbicz import ChainStats, GerbiczChain, single_check_block
-from .methods import PRP_CAUTION, Method, method, transcript_context  # noqa: F401 (re-export)
+from .methods import Method, method, transcript_context
 from .numbers import Modulus, parse_number
 from .proof import Statement, reduce_claim, residue_digest
 from .signing import fingerprint, signature_valid
