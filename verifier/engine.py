@@ -364,7 +364,10 @@ class Run:
         finally:
             self.spool.close()
         atomic_write(self.out, data)
-        for path in (self.spool_path, self.state_path, self.prev_path):
+        # State files first (the older one first): a kill in between leaves the final state with its
+        # spool, or a spool without state (overwritten by the next fresh run), never a state that
+        # points at a missing spool.
+        for path in (self.prev_path, self.state_path, self.spool_path):
             path.unlink(missing_ok=True)
         verdict = cfg.method.verdict(cfg.number, cfg.base, final, cfg.known_factors)
         return RunReport(
